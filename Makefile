@@ -1,0 +1,43 @@
+# Every target bootstraps .venv itself, so a fresh clone needs only `make demo` or `make test`.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: install test demo lint serve openapi bench bench-quick fuzz clean
+
+install: $(STAMP)
+
+$(STAMP): pyproject.toml
+	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[dev,postgres]'
+	touch $(STAMP)
+
+test: install
+	$(BIN)/python -m pytest -q
+
+lint: install
+	$(BIN)/ruff check detectors service tests benchmarks
+	$(BIN)/ruff format --check detectors service tests benchmarks
+
+demo: install
+	$(BIN)/inrush demo
+
+serve: install
+	$(BIN)/inrush serve
+
+openapi: install
+	$(BIN)/inrush openapi --output openapi/openapi.json
+
+bench: install
+	$(BIN)/python -m benchmarks.run --full
+
+bench-quick: install
+	$(BIN)/python -m benchmarks.run --quick
+
+fuzz: install
+	INRUSH_FUZZ_EXAMPLES=2000 $(BIN)/python -m pytest -q tests/reliability/test_fuzz.py
+
+clean:
+	rm -rf $(VENV) .pytest_cache .ruff_cache build *.egg-info

@@ -1,0 +1,239 @@
+"""The observation cube: validated daily counts and metric sufficient statistics per arm and source.
+
+Every detector works on an :class:`ObservationTable`, a dense ``(day, arm, source)`` array built
+once from the rows of the data contract. Building it validates every row and raises
+:class:`~detectors.errors.InputError` listing all problems, so nothing is silently dropped.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError, Problem
+
+UNATTRIBUTED = "unattributed"
+STAT_FIELDS = ("n", "sum", "sum_sq")
+METRIC_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,63}$")
+# Relative slack for sum_sq >= sum^2/n: exports round floating sums.
+_SUMSQ_RTOL = 1e-9
+
+
+@dataclass(frozen=True, eq=False)
+class ObservationTable:
+    """Dense daily data of one experiment.
+
+    Attributes:
+        arms: arm names, the first is the reference arm.
+        dates: the contiguous day axis (``datetime64[D]``); days without rows hold zeros.
+        sources: entry sources, sorted.
+        entered: units entered, ``int64`` array of shape ``(days, arms, sources)``.
+        metrics: per metric name, ``float64`` array ``(days, arms, sources, 3)`` holding
+            ``n, sum, sum_sq`` of the per-unit metric.
+
+    Example:
+        >>> rows = pd.DataFrame({"date": ["2026-03-01"] * 2, "arm": ["control", "variant"],
+        ...                      "source": ["organic"] * 2, "entered": [100, 104]})
+        >>> table = ObservationTable.from_frame(rows, arms=["control", "variant"])
+        >>> table.entered.shape
+        (1, 2, 1)
+    """
+
+    arms: tuple[str, ...]
+    dates: np.ndarray
+    sources: tuple[str, ...]
+    entered: np.ndarray
+    metrics: dict[str, np.ndarray] = field(default_factory=dict)
+
+    @property
+    def n_days(self) -> int:
+        return int(self.dates.shape[0])
+
+    @property
+    def daily_totals(self) -> np.ndarray:
+        """Units per day and arm, ``(days, arms)``."""
+        return self.entered.sum(axis=2)
+
+    def date_list(self) -> list[dt.date]:
+        return [d.item() for d in self.dates]
+
+    def select(self, *, sources: Sequence[str] | None = None,
+               day_mask: np.ndarray | None = None) -> ObservationTable:
+        """A table restricted to some sources and/or days (``day_mask`` over the day axis)."""
+        source_index = (np.arange(len(self.sources)) if sources is None
+                        else np.array([self.sources.index(s) for s in sources], dtype=int))
+        days = np.ones(self.n_days, bool) if day_mask is None else np.asarray(day_mask, bool)
+        return ObservationTable(
+            arms=self.arms,
+            dates=self.dates[days],
+            sources=tuple(self.sources[i] for i in source_index),
+            entered=self.entered[days][:, :, source_index],
+            metrics={k: v[days][:, :, source_index] for k, v in self.metrics.items()},
+        )
+
+    @classmethod
+    def from_records(cls, rows: Iterable[Mapping[str, object]], arms: Sequence[str], *,
+                     start: dt.date | None = None, end: dt.date | None = None
+                     ) -> ObservationTable:
+        """Build from JSON-style rows ``{date, arm, source, entered, metrics: {name: {...}}}``."""
+        return cls.from_frame(records_to_frame(rows), arms, start=start, end=end)
+
+    @classmethod
+    def from_frame(cls, frame: pd.DataFrame, arms: Sequence[str], *,
+                   start: dt.date | None = None, end: dt.date | None = None
+                   ) -> ObservationTable:
+        """Validate rows in the flat layout (``date, arm, source, entered, NAME.n, ...``)."""
+        arms = tuple(arms)
+        clean, metric_names = validate_frame(frame, arms, start=start, end=end)
+        row_days = clean["date"].to_numpy().astype("datetime64[D]")
+        first = np.datetime64(start, "D") if start is not None else row_days.min()
+        last = row_days.max()
+        if end is not None:
+            last = max(last, np.datetime64(end, "D"))
+        dates = np.arange(first, last + np.timedelta64(1, "D"), dtype="datetime64[D]")
+        sources = tuple(sorted(clean["source"].unique()))
+        day_index = (row_days - first).astype(np.int64)
+        arm_index = pd.Categorical(clean["arm"], categories=arms).codes.astype(np.int64)
+        source_index = pd.Categorical(clean["source"], categories=sources).codes.astype(np.int64)
+        shape = (len(dates), len(arms), len(sources))
+        entered = np.zeros(shape, dtype=np.int64)
+        np.add.at(entered, (day_index, arm_index, source_index),
+                  clean["entered"].to_numpy(np.int64))
+        metrics: dict[str, np.ndarray] = {}
+        for name in metric_names:
+            cube = np.zeros((*shape, 3), dtype=float)
+            values = clean[[f"{name}.{s}" for s in STAT_FIELDS]].to_numpy(float)
+            np.add.at(cube, (day_index, arm_index, source_index), values)
+            metrics[name] = cube
+        return cls(arms, dates, sources, entered, metrics)
+
+
+def metric_columns(columns: Iterable[str]) -> list[str]:
+    """Metric names present in flat column names such as ``sessions.n``."""
+    names: list[str] = []
+    for column in columns:
+        if "." in column:
+            name, _, stat = column.rpartition(".")
+            if stat in STAT_FIELDS and name not in names:
+                names.append(name)
+    return names
+
+
+def records_to_frame(rows: Iterable[Mapping[str, object]]) -> pd.DataFrame:
+    """Flatten JSON-style rows (nested ``metrics``) into the flat column layout."""
+    flat: list[dict[str, object]] = []
+    for row in rows:
+        item = {k: row.get(k) for k in ("date", "arm", "source", "entered")}
+        for name, stats in (row.get("metrics") or {}).items():  # type: ignore[union-attr]
+            for stat in STAT_FIELDS:
+                item[f"{name}.{stat}"] = (stats or {}).get(stat)
+        flat.append(item)
+    return pd.DataFrame(flat, columns=None if flat else ["date", "arm", "source", "entered"])
+
+
+def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date | None = None,
+                   end: dt.date | None = None) -> tuple[pd.DataFrame, list[str]]:
+    """Check every row; return a normalised copy and the metric names, or raise InputError.
+
+    Normalised: ``date`` as ``datetime64[D]``, missing ``source`` as ``unattributed``,
+    ``entered`` as int64, metric stats as float (a metric absent on a row counts as ``n = 0``).
+    """
+    problems: list[Problem] = []
+    if frame is None or len(frame) == 0:
+        raise InputError([Problem("rows", "no observations: at least one row is needed")])
+    frame = frame.reset_index(drop=True)
+    for column in ("date", "arm", "entered"):
+        if column not in frame.columns:
+            problems.append(Problem(column, "required column is missing"))
+    if problems:
+        raise InputError(problems)
+    names = metric_columns(frame.columns)
+    for name in names:
+        if not METRIC_NAME.match(name):
+            problems.append(Problem(f"{name}", "metric names are letters, digits and _"))
+        for stat in STAT_FIELDS:
+            if f"{name}.{stat}" not in frame.columns:
+                problems.append(Problem(f"{name}.{stat}", "column is missing"))
+    if problems:
+        raise InputError(problems)
+
+    def flag(mask: np.ndarray, column: str, message: str) -> None:
+        for row in np.flatnonzero(mask):
+            problems.append(Problem(column, message, int(row)))
+
+    raw_dates = frame["date"]
+    as_text = raw_dates.astype("string").str.strip()
+    dates = pd.to_datetime(as_text, format="%Y-%m-%d", errors="coerce")
+    flag(dates.isna().to_numpy(), "date", "must be a calendar date written YYYY-MM-DD")
+    day = dates.to_numpy().astype("datetime64[D]")
+    if start is not None:
+        flag(~np.isnat(day) & (day < np.datetime64(start, "D")), "date",
+             f"is before the experiment's start {start.isoformat()}")
+    if end is not None:
+        flag(~np.isnat(day) & (day > np.datetime64(end, "D")), "date",
+             f"is after the last accepted date {end.isoformat()}")
+
+    arm = frame["arm"].astype("string")
+    flag((~arm.isin(list(arms)) | arm.isna()).to_numpy(), "arm",
+         f"is not one of the experiment's arms {list(arms)}")
+
+    if "source" in frame.columns:
+        source = frame["source"].astype("string").str.strip().fillna("")
+        source = source.mask(source == "", UNATTRIBUTED)
+    else:
+        source = pd.Series([UNATTRIBUTED] * len(frame), dtype="string")
+    flag((source.str.len() > 128).to_numpy(), "source", "is longer than 128 characters")
+
+    entered = _numeric(frame["entered"])
+    bad_entered = ~np.isfinite(entered) | (entered < 0) | (entered != np.floor(entered))
+    flag(bad_entered, "entered", "must be a whole number >= 0")
+    flag(np.isfinite(entered) & (entered > 2**53), "entered", "is implausibly large")
+
+    clean = pd.DataFrame({"date": day, "arm": arm, "source": source,
+                          "entered": np.where(bad_entered, 0, entered)})
+    for name in names:
+        stats = np.column_stack([_numeric(frame[f"{name}.{s}"]) for s in STAT_FIELDS])
+        absent = np.isnan(stats).all(axis=1) & frame[[f"{name}.{s}" for s in STAT_FIELDS]] \
+            .isna().all(axis=1).to_numpy()
+        stats[absent] = 0.0
+        n, total, total_sq = stats.T
+        partial = ~absent & ~np.isfinite(stats).all(axis=1)
+        flag(partial, name, "needs finite n, sum and sum_sq together")
+        ok = ~partial
+        flag(ok & ((n < 0) | (n != np.floor(n))), f"{name}.n", "must be a whole number >= 0")
+        flag(ok & ~bad_entered & (n > entered), f"{name}.n",
+             "is larger than entered: a cohort cannot have more measured units than units")
+        flag(ok & (n == 0) & ((total != 0) | (total_sq != 0)), name,
+             "n is 0 so sum and sum_sq must be 0")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            floor = np.where(n > 0, total * total / np.where(n > 0, n, 1), 0.0)
+        flag(ok & (n > 0) & (total_sq < floor - _SUMSQ_RTOL * np.maximum(1.0, np.abs(floor))),
+             f"{name}.sum_sq", "is below sum^2/n, which no set of numbers can give")
+        for stat, column in zip(STAT_FIELDS, stats.T, strict=True):
+            clean[f"{name}.{stat}"] = np.where(ok, column, 0.0)
+
+    key_ok = ~np.isnat(day) & arm.isin(list(arms)).fillna(False).to_numpy()
+    keys = clean.loc[key_ok, ["date", "arm", "source"]]
+    duplicated = keys.duplicated(keep="first")
+    for row in keys.index[duplicated.to_numpy()]:
+        problems.append(Problem("date,arm,source", "repeats the key of an earlier row", int(row)))
+    if problems:
+        problems.sort(key=lambda p: (p.row if p.row is not None else -1, p.field))
+        raise InputError(problems)
+    clean["entered"] = clean["entered"].astype(np.int64)
+    clean["arm"] = clean["arm"].astype(str)
+    clean["source"] = clean["source"].astype(str)
+    return clean, names
+
+
+def _numeric(series: pd.Series) -> np.ndarray:
+    """Numbers as float; booleans and unparsable text become NaN (and are reported)."""
+    if series.dtype == bool:
+        return np.full(len(series), np.nan)
+    values = series.map(lambda v: np.nan if isinstance(v, bool) else v)
+    return pd.to_numeric(values, errors="coerce").to_numpy(dtype=float, na_value=np.nan)

@@ -1,0 +1,161 @@
+"""``inrush demo``: the invented Larkspur Trails scenario, end to end on embedded SQLite."""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import io
+import os
+import secrets
+import socket
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pandas as pd
+
+from ..demo import scenario
+from . import EXIT_FAILURE, EXIT_OK
+from .report import format_diagnosis, format_reweighting
+
+
+def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    demo = subparsers.add_parser(
+        "demo", help="run the invented demo scenario against a local server",
+        description="Start Inrush on SQLite, upload the demo experiment day by day and print "
+                    "what its owner would see.")
+    demo.add_argument("--port", type=int, default=0, help="port (default: a free one)")
+    demo.add_argument("--database", type=Path, default=Path("inrush-demo.db"),
+                      help="SQLite file for the demo (recreated each run)")
+    demo.add_argument("--no-serve", action="store_true", help="exit after the printout")
+    demo.add_argument("--offline", action="store_true",
+                      help="no server: run `inrush analyze` and `inrush reweight` on the CSV")
+    demo.set_defaults(handler=run_demo)
+
+
+def run_demo(args: argparse.Namespace) -> int:
+    if args.offline:
+        return _offline()
+    return _online(args)
+
+
+def _offline() -> int:
+    from . import main
+
+    csv = str(scenario.CSV_PATH)
+    arms = ",".join(scenario.ARMS)
+    print(f"$ inrush analyze {csv} --arms {arms}\n")
+    status = main(["analyze", csv, "--arms", arms])
+    if status:
+        return status
+    print(f"\n$ inrush reweight {csv} --arms {arms} --metric routes_saved --by source,window\n")
+    return main(["reweight", csv, "--arms", arms, "--metric", "routes_saved",
+                 "--by", "source,window"])
+
+
+def _free_port() -> int:
+    with contextlib.closing(socket.socket(socket.AF_INET, socket.SOCK_STREAM)) as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+def _online(args: argparse.Namespace) -> int:
+    port = args.port or _free_port()
+    base = f"http://127.0.0.1:{port}"
+    for suffix in ("", "-wal", "-shm"):
+        Path(f"{args.database}{suffix}").unlink(missing_ok=True)
+    token = secrets.token_urlsafe(24)
+    env = {**os.environ, "INRUSH_DATABASE_URL": f"sqlite:///{args.database.resolve()}",
+           "INRUSH_ADMIN_TOKEN": token, "INRUSH_PUBLIC_URL": base}
+    server = subprocess.Popen(
+        [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1",
+         "--port", str(port)], env=env)
+    try:
+        client = httpx.Client(base_url=base, timeout=30.0,
+                              headers={"Authorization": f"Bearer {token}"})
+        if not _wait_healthy(client, server):
+            print("inrush demo: the server did not start", file=sys.stderr)
+            return EXIT_FAILURE
+        _upload(client)
+        _show(client, base, token)
+        if args.no_serve:
+            return EXIT_OK
+        print("\nServing until Ctrl-C.")
+        server.wait()
+        return EXIT_OK
+    except KeyboardInterrupt:
+        return EXIT_OK
+    except httpx.HTTPError as error:
+        print(f"inrush demo: {error}", file=sys.stderr)
+        return EXIT_FAILURE
+    finally:
+        if server.poll() is None:
+            server.terminate()
+            with contextlib.suppress(subprocess.TimeoutExpired):
+                server.wait(timeout=10)
+
+
+def _wait_healthy(client: httpx.Client, server: subprocess.Popen[bytes]) -> bool:
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline:
+        if server.poll() is not None:
+            return False
+        with contextlib.suppress(httpx.HTTPError):
+            if client.get("/healthz").status_code == 200:
+                return True
+        time.sleep(0.2)
+    return False
+
+
+def _check(response: httpx.Response) -> dict[str, Any]:
+    if response.status_code >= 400:
+        raise httpx.HTTPStatusError(f"{response.request.method} {response.request.url} -> "
+                                    f"{response.status_code}: {response.text}",
+                                    request=response.request, response=response)
+    return response.json() if response.content else {}
+
+
+def _upload(client: httpx.Client) -> None:
+    _check(client.post("/v1/experiments", json={
+        "id": scenario.EXPERIMENT_ID, "title": scenario.TITLE,
+        "start_date": scenario.START.isoformat(), "arms": list(scenario.ARMS),
+        "allocation": [{"from": scenario.START.isoformat(), "weights": [0.5, 0.5]}],
+    }))
+    frame = pd.read_csv(scenario.CSV_PATH, dtype=str, keep_default_na=False)
+    print(f"Uploading {frame['date'].nunique()} days of {scenario.EXPERIMENT_ID} "
+          "one day at a time, as a nightly export would:")
+    last_status = None
+    for date, day in frame.groupby("date", sort=True):
+        buffer = io.StringIO()
+        day.to_csv(buffer, index=False)
+        answer = _check(client.put(f"/v1/experiments/{scenario.EXPERIMENT_ID}/observations",
+                                   content=buffer.getvalue(),
+                                   headers={"Content-Type": "text/csv"}))
+        status = answer.get("diagnosis", {}).get("status")
+        if status != last_status:
+            print(f"  {date}: {answer.get('written')} rows written, status now {status}")
+            last_status = status
+    print()
+
+
+def _show(client: httpx.Client, base: str, token: str) -> None:
+    experiment = scenario.EXPERIMENT_ID
+    diagnosis = _check(client.get(f"/v1/experiments/{experiment}/diagnosis"))
+    print(format_diagnosis(diagnosis))
+    alerts = _check(client.get("/v1/alerts", params={"experiment": experiment}))
+    print(f"\nOpen alerts: {len(alerts.get('items', []))}")
+    for alert in alerts.get("items", [])[:10]:
+        print(f"  [{alert['kind']}] {alert['title']}")
+    reweighting = _check(client.post(f"/v1/experiments/{experiment}/reweight", json={
+        "metric": "routes_saved", "target": "reference_arm", "by": ["source", "window"]}))
+    print()
+    print(format_reweighting(reweighting))
+    print("\nPoll these (Authorization: Bearer <token>):")
+    for path in (f"/v1/experiments/{experiment}/diagnosis",
+                 f"/v1/experiments/{experiment}/series", "/v1/alerts",
+                 f"/experiments/{experiment}", "/metrics"):
+        print(f"  {base}{path}")
+    print(f"Demo admin token: {token}")

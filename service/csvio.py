@@ -1,0 +1,58 @@
+"""Reading observation CSV files into the flat frame the detectors validate."""
+
+from __future__ import annotations
+
+import csv
+import io
+from pathlib import Path
+
+import pandas as pd
+
+from detectors.errors import InputError, Problem
+
+REQUIRED_COLUMNS = ("date", "arm", "entered")
+
+
+def read_observations_csv(source: str | bytes | Path) -> pd.DataFrame:
+    """Parse CSV text, bytes or a file into a frame of strings (validation happens later).
+
+    A UTF-8 byte-order mark is accepted; any other encoding, ragged rows, an empty file or a
+    missing required column raise :class:`InputError` naming the problem and the row.
+    """
+    if isinstance(source, Path):
+        source = source.read_bytes()
+    if isinstance(source, bytes):
+        try:
+            source = source.decode("utf-8-sig")
+        except UnicodeDecodeError as error:
+            raise InputError([Problem("body", f"CSV must be UTF-8 (byte {error.start} is not)")]
+                             ) from None
+    text = source.lstrip("\ufeff")
+    if not text.strip():
+        raise InputError([Problem("body", "the CSV is empty: a header row and data are needed")])
+    reader = csv.reader(io.StringIO(text, newline=""), strict=True)
+    try:
+        header = [name.strip() for name in next(reader)]
+        rows = list(reader)
+    except csv.Error as error:
+        raise InputError([Problem("body", f"CSV is malformed: {error}")]) from None
+    problems: list[Problem] = []
+    missing = [c for c in REQUIRED_COLUMNS if c not in header]
+    if missing:
+        problems.append(Problem("header", f"missing required column(s): {', '.join(missing)}"))
+    duplicated = sorted({c for c in header if header.count(c) > 1})
+    if duplicated:
+        problems.append(Problem("header", f"repeated column(s): {', '.join(duplicated)}"))
+    if problems:
+        raise InputError(problems)
+    rows = [r for r in rows if r != []]  # blank lines carry nothing
+    for index, row in enumerate(rows):
+        if len(row) != len(header):
+            problems.append(Problem("row", f"has {len(row)} fields, the header has "
+                                    f"{len(header)}", index))
+    if problems:
+        raise InputError(problems)
+    if not rows:
+        raise InputError([Problem("rows", "the CSV has a header but no data rows")])
+    frame = pd.DataFrame(rows, columns=header, dtype="string")
+    return frame.replace({"": pd.NA})
