@@ -56,3 +56,34 @@ def read_observations_csv(source: str | bytes | Path) -> pd.DataFrame:
         raise InputError([Problem("rows", "the CSV has a header but no data rows")])
     frame = pd.DataFrame(rows, columns=header, dtype="string")
     return frame.replace({"": pd.NA})
+
+
+def write_observations_csv(rows: list[dict[str, object]]) -> str:
+    """Rows ``{date, arm, source, entered, metrics: {name: {n, sum, sum_sq}}}`` as CSV text.
+
+    The layout is the one :func:`read_observations_csv` reads: ``date,arm,source,entered`` then
+    ``NAME.n,NAME.sum,NAME.sum_sq`` per metric (sorted by name); a metric absent on a row
+    leaves its three cells empty.
+    """
+    names = sorted({name for row in rows for name in (row.get("metrics") or {})})  # type: ignore[union-attr]
+    header = ["date", "arm", "source", "entered"]
+    header += [f"{name}.{stat}" for name in names for stat in ("n", "sum", "sum_sq")]
+    buffer = io.StringIO(newline="")
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(header)
+    for row in rows:
+        metrics: dict[str, dict[str, object]] = row.get("metrics") or {}  # type: ignore[assignment]
+        cells = [row["date"], row["arm"], row["source"], row["entered"]]
+        for name in names:
+            stats = metrics.get(name)
+            cells += ([repr_number(stats[s]) for s in ("n", "sum", "sum_sq")] if stats
+                      else ["", "", ""])
+        writer.writerow(cells)
+    return buffer.getvalue()
+
+
+def repr_number(value: object) -> str:
+    """Shortest text that reads back as the same number (``repr`` of floats round-trips)."""
+    if isinstance(value, float) and value.is_integer() and abs(value) < 2**53:
+        return str(int(value))
+    return repr(value) if isinstance(value, float) else str(value)

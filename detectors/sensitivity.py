@@ -1,0 +1,362 @@
+"""Detection sensitivity: the smallest inflow Inrush would flag, from the experiment's own traffic.
+
+Inrush alerts on a run of days when the window scan (:func:`detectors.srm.scan_windows`) finds
+a window whose Pearson chi-square p-value, Holm-adjusted over every window of 1..``max_window``
+days, is below ``alpha``. Holm's first step is Bonferroni (Holm 1979, "A simple sequentially
+rejective multiple test procedure", Scand. J. Statist. 6:65-70): some window is flagged exactly
+when the smallest raw p-value is below ``alpha / m``, with ``m`` the number of windows tested
+(``sum_{L=1..max_window} (D - L + 1)`` for ``D`` days with units).
+
+For an inflow of ``x`` extra units a day into arm ``a`` during ``K`` days, on top of a baseline
+of ``N`` units a day split by weights ``w``, the ``K``-day window's expected counts are
+``O_a = K (N w_a + x)``, ``O_b = K N w_b`` against the test's ``E = K (N + x) w``. The Pearson
+statistic is then approximately noncentral chi-square with ``A - 1`` degrees of freedom and
+noncentrality ``lambda = sum_b (O_b - E_b)^2 / E_b = K x^2 (1 - w_a) / ((N + x) w_a)``
+(Cohen 1988, "Statistical Power Analysis for the Behavioral Sciences", 2nd ed., ch. 7:
+``lambda = N w^2`` with effect size ``w``). The power is
+``P(ncx2(A - 1, lambda) > chi2.isf(alpha / m, A - 1))`` (``scipy.stats.ncx2``) and the smallest
+``x`` reaching the target power is found with ``scipy.optimize.brentq``.
+
+Only the window that matches the inflow is counted, so the figure is slightly conservative:
+neighbouring windows overlapping the inflow can also fire.
+
+The whole-period figure answers the same question for the overall test at ``alpha`` (no
+multiplicity): the smallest relative shift ``delta`` of one arm's share, the others scaling
+down in proportion, caught with the target power over the ``T`` units seen so far:
+``lambda = T W_a delta^2 / (1 - W_a)`` with ``W`` the planned shares of the period.
+
+Example:
+    >>> import numpy as np
+    >>> counts = np.full((28, 2), 2000); planned = np.full((28, 2), 0.5)
+    >>> s = sensitivity(counts, planned, ["control", "cards"], days=3)
+    >>> s.family_size, round(s.arms[0].units_per_day)
+    (175, 207)
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from scipy import optimize, stats
+
+from .errors import InputError, Problem
+
+WEIGHT_TOLERANCE = 1e-6
+MAX_WINDOW_LIMIT = 31
+
+
+@dataclass(frozen=True, slots=True)
+class InflowSensitivity:
+    """Smallest extra units per day into ``arm``, held for ``days`` days, flagged with the
+    target power; ``share_of_arm_traffic`` = that inflow over the arm's planned daily units."""
+
+    arm: str
+    days: int
+    units_per_day: float
+    share_of_arm_traffic: float
+
+
+@dataclass(frozen=True, slots=True)
+class ShareShiftSensitivity:
+    """Smallest relative shift of ``arm``'s share over the whole period caught with the target
+    power, and the excess units it means (``None`` when no shift that small is possible)."""
+
+    arm: str
+    relative_share_shift: float | None
+    units: float | None
+
+
+@dataclass(frozen=True)
+class Sensitivity:
+    """What the window scan and the overall test can detect on this experiment's traffic.
+
+    ``window_days`` is the window the figure is computed on (``min(days, max_window)``).
+    ``whole_period`` holds one entry per arm; :attr:`whole_period_worst` is the arm that needs
+    the largest shift (the figure quoted in :meth:`to_dict`).
+    """
+
+    days: int
+    window_days: int
+    power: float
+    alpha: float
+    max_window: int
+    family_size: int
+    baseline_units_per_day: float
+    baseline_days_used: int
+    weights: dict[str, float]
+    arms: tuple[InflowSensitivity, ...]
+    whole_period: tuple[ShareShiftSensitivity, ...]
+    period_days: int
+    period_units: int
+
+    @property
+    def whole_period_worst(self) -> ShareShiftSensitivity:
+        return max(self.whole_period, key=lambda s: math.inf if s.relative_share_shift is None
+                   else s.relative_share_shift)
+
+    @property
+    def summary(self) -> str:
+        inflows = " or ".join(
+            f"{s.units_per_day:,.0f} a day into {s.arm} ({100 * s.share_of_arm_traffic:+.0f}% "
+            "of its traffic)" for s in self.arms)
+        held = _days(self.days)
+        worst = self.whole_period_worst
+        if worst.relative_share_shift is None:
+            period = (f"the {_days(self.period_days)} so far hold too few units for the overall "
+                      f"test to reach {100 * self.power:.0f}% power")
+        else:
+            period = (f"over the {_days(self.period_days)} so far the overall test catches an arm "
+                      f"share off by {100 * worst.relative_share_shift:.1f}% relative (about "
+                      f"{worst.units:,.0f} units into {worst.arm})")
+        return (f"With about {self.baseline_units_per_day:,.0f} units a day, Inrush flags an "
+                f"inflow held for {held} with {100 * self.power:.0f}% probability once it "
+                f"reaches about {inflows} (window test at p < {self.alpha:g} after Holm over "
+                f"{self.family_size:,} windows); {period}.")
+
+    @property
+    def caveats(self) -> tuple[str, ...]:
+        notes = [
+            "An inflow smaller than these figures can still bias the effect estimate while "
+            "passing unnoticed; a clean result is not proof that no campaign reached one arm.",
+            f"The figures assume the recent {self.baseline_units_per_day:,.0f} units a day and "
+            "the current weights hold on the days of the inflow.",
+        ]
+        if self.days > self.max_window:
+            notes.append(
+                f"The scan looks at windows of at most {self.max_window} days, so a "
+                f"{self.days}-day inflow is computed on its best {self.max_window}-day window; "
+                "several windows along it can fire, so the real chance is higher.")
+        return tuple(notes)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-safe document."""
+        worst = self.whole_period_worst
+        return {
+            "days": self.days,
+            "window_days": self.window_days,
+            "power": self.power,
+            "alpha": self.alpha,
+            "max_window": self.max_window,
+            "family_size": self.family_size,
+            "baseline_units_per_day": round(self.baseline_units_per_day, 2),
+            "weights": {a: round(w, 6) for a, w in self.weights.items()},
+            "arms": [{"arm": s.arm, "units_per_day": round(s.units_per_day, 2),
+                      "share_of_arm_traffic": round(s.share_of_arm_traffic, 6)}
+                     for s in self.arms],
+            "whole_period": {
+                "days": self.period_days,
+                "total_units": self.period_units,
+                "arm": worst.arm,
+                "relative_share_shift": _round(worst.relative_share_shift, 6),
+                "units": _round(worst.units, 2),
+                "by_arm": [{"arm": s.arm, "relative_share_shift": _round(s.relative_share_shift, 6),
+                            "units": _round(s.units, 2)} for s in self.whole_period],
+            },
+            "summary": self.summary,
+            "caveats": list(self.caveats),
+        }
+
+
+def window_family_size(n_days: int, max_window: int) -> int:
+    """Number of windows of 1..``max_window`` consecutive days in ``n_days`` days.
+
+    Example:
+        >>> window_family_size(28, 7)
+        175
+    """
+    return int(sum(n_days - length + 1 for length in range(1, min(max_window, n_days) + 1)))
+
+
+def chisquare_power(noncentrality: float, df: int, level: float) -> float:
+    """Power of a chi-square test at ``level`` with ``df`` degrees of freedom when the statistic
+    is noncentral chi-square with the given noncentrality (Cohen 1988, ch. 7).
+
+    Example:
+        >>> round(chisquare_power(7.849, 1, 0.05), 3)  # (1.96 + 0.8416)^2: 80% at 5%, df 1
+        0.8
+    """
+    critical = stats.chi2.isf(level, df)
+    if noncentrality <= 0:
+        return float(stats.chi2.sf(critical, df))
+    return float(stats.ncx2.sf(critical, df, noncentrality))
+
+
+def required_noncentrality(df: int, level: float, power: float) -> float:
+    """Noncentrality at which the chi-square test at ``level`` reaches ``power`` (brentq).
+
+    Example:
+        >>> round(required_noncentrality(1, 0.05, 0.8), 2)
+        7.85
+    """
+    upper = 1.0
+    while chisquare_power(upper, df, level) < power:
+        upper *= 2.0
+    return float(optimize.brentq(lambda nc: chisquare_power(nc, df, level) - power, 0.0, upper,
+                                 xtol=1e-10, rtol=1e-12))
+
+
+def inflow_noncentrality(inflow: float, baseline: float, weights: Sequence[float] | np.ndarray,
+                         arm: int, days: int) -> float:
+    """Noncentrality of the ``days``-day window when ``inflow`` extra units a day enter ``arm``.
+
+    ``sum_b (O_b - E_b)^2 / E_b`` with ``O_a = K (N w_a + x)``, ``O_b = K N w_b`` and
+    ``E = K (N + x) w``, which simplifies to ``K x^2 (1 - w_a) / ((N + x) w_a)``.
+
+    Example:
+        >>> inflow_noncentrality(100.0, 900.0, [0.5, 0.5], 1, 2)
+        20.0
+    """
+    w = float(np.asarray(weights, dtype=float)[arm])
+    return days * inflow * inflow * (1.0 - w) / ((baseline + inflow) * w)
+
+
+def inflow_power(inflow: float, baseline: float, weights: Sequence[float] | np.ndarray, arm: int,
+                 days: int, level: float) -> float:
+    """Chance that the ``days``-day window test at ``level`` flags the inflow."""
+    df = len(weights) - 1
+    return chisquare_power(inflow_noncentrality(inflow, baseline, weights, arm, days), df, level)
+
+
+def smallest_inflow(baseline: float, weights: Sequence[float] | np.ndarray, arm: int, days: int,
+                    level: float, power: float) -> float:
+    """Smallest extra units a day into ``arm`` over ``days`` days flagged with ``power`` at
+    ``level`` (a per-window level, i.e. already divided by the family size).
+
+    Example:
+        >>> round(smallest_inflow(4000.0, [0.5, 0.5], 1, 3, 0.0005 / 175, 0.8))
+        207
+    """
+    def gap(inflow: float) -> float:
+        return inflow_power(inflow, baseline, weights, arm, days, level) - power
+
+    upper = max(baseline, 1.0)
+    while gap(upper) < 0:
+        upper *= 2.0
+    return float(optimize.brentq(gap, 0.0, upper, xtol=1e-8, rtol=1e-12))
+
+
+def sensitivity(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[str], *, days: int,
+                alpha: float = 0.0005, max_window: int = 7, power: float = 0.8,
+                baseline_days: int = 14) -> Sensitivity:
+    """Smallest one-arm inflow over ``days`` consecutive days flagged with ``power`` probability.
+
+    ``daily_counts`` and ``planned`` are ``(days, arms)``: units per day and arm, and the weights
+    in force each day. The baseline is the mean daily total over the last ``baseline_days``
+    days with units, split by the weights of the last day with units. The family size is the
+    number of windows :func:`detectors.srm.scan_windows` tests on these days (windows holding
+    units); when ``days`` is longer than the data, that of a ``days``-day experiment.
+
+    Example:
+        >>> import numpy as np
+        >>> counts = np.tile([3600, 400], (21, 1)); planned = np.tile([0.9, 0.1], (21, 1))
+        >>> s = sensitivity(counts, planned, ["control", "cards"], days=2)
+        >>> [round(a.units_per_day) for a in s.arms]
+        [802, 82]
+    """
+    counts, weights_by_day, arm_names = _validate(daily_counts, planned, arms, days, alpha,
+                                                  max_window, power, baseline_days)
+    totals = counts.sum(axis=1)
+    active = np.flatnonzero(totals > 0)
+    recent = active[-baseline_days:]
+    baseline = float(totals[recent].mean())
+    weights = [float(w) for w in weights_by_day[active[-1]]]
+    window = min(days, max_window)
+    family = (_tested_windows(totals, max_window) if days <= counts.shape[0]
+              else window_family_size(days, max_window))
+    level = alpha / family
+
+    inflows = []
+    for index, arm in enumerate(arm_names):
+        x = smallest_inflow(baseline, weights, index, window, level, power)
+        inflows.append(InflowSensitivity(arm, days, x, x / (baseline * weights[index])))
+
+    period_units = int(np.rint(totals.sum()))
+    period_shares = [float(v) for v in
+                     (totals[:, None] * weights_by_day).sum(axis=0) / totals.sum()]
+    needed = required_noncentrality(len(arm_names) - 1, alpha, power)
+    shifts = []
+    for arm, share in zip(arm_names, period_shares, strict=True):
+        delta = math.sqrt(needed * (1.0 - share) / (period_units * share))
+        possible = share * (1.0 + delta) < 1.0
+        shifts.append(ShareShiftSensitivity(arm, delta if possible else None,
+                                            period_units * share * delta if possible else None))
+    return Sensitivity(
+        days=days, window_days=window, power=power, alpha=alpha, max_window=max_window,
+        family_size=family, baseline_units_per_day=baseline, baseline_days_used=int(recent.size),
+        weights=dict(zip(arm_names, weights, strict=True)),
+        arms=tuple(inflows), whole_period=tuple(shifts), period_days=int(counts.shape[0]),
+        period_units=period_units)
+
+
+def _tested_windows(totals: np.ndarray, max_window: int) -> int:
+    """Windows of 1..max_window days holding units: the family ``scan_windows`` adjusts over."""
+    cumulative = np.concatenate([[0.0], np.cumsum(totals, dtype=float)])
+    n_days = totals.shape[0]
+    return int(sum(np.count_nonzero(cumulative[length:] - cumulative[:n_days - length + 1] > 0)
+                   for length in range(1, min(max_window, n_days) + 1)))
+
+
+def _validate(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[str], days: int,
+              alpha: float, max_window: int, power: float, baseline_days: int
+              ) -> tuple[np.ndarray, np.ndarray, tuple[str, ...]]:
+    problems: list[Problem] = []
+    counts = np.asarray(daily_counts, dtype=float)
+    weights = np.asarray(planned, dtype=float)
+    arm_names = tuple(str(a) for a in arms)
+    if counts.ndim != 2 or counts.shape[1] < 2:
+        problems.append(Problem("daily_counts", "must be a (days, arms) array with >= 2 arms"))
+    elif not np.isfinite(counts).all() or (counts < 0).any():
+        problems.append(Problem("daily_counts", "must hold finite unit counts >= 0"))
+    elif counts.sum() <= 0:
+        problems.append(Problem("daily_counts", "no units on any day: nothing to measure from"))
+    if weights.shape != counts.shape:
+        problems.append(Problem("planned", f"must have the shape of daily_counts {counts.shape}, "
+                                           f"got {weights.shape}"))
+    elif not np.isfinite(weights).all() or (weights <= 0).any() \
+            or (np.abs(weights.sum(axis=1) - 1.0) > WEIGHT_TOLERANCE).any():
+        problems.append(Problem("planned", "each day's weights must be positive and sum to 1"))
+    if counts.ndim == 2 and len(arm_names) != counts.shape[1]:
+        problems.append(Problem("arms", f"{len(arm_names)} arm names for {counts.shape[1]} "
+                                        "columns"))
+    elif len(set(arm_names)) != len(arm_names):
+        problems.append(Problem("arms", "arm names must be unique"))
+    if not _whole(days) or days < 1:
+        problems.append(Problem("days", "must be a whole number of days >= 1"))
+    if not _whole(max_window) or not 1 <= max_window <= MAX_WINDOW_LIMIT:
+        problems.append(Problem("max_window",
+                                f"must be a whole number of days between 1 and {MAX_WINDOW_LIMIT}"))
+    if not _whole(baseline_days) or baseline_days < 1:
+        problems.append(Problem("baseline_days", "must be a whole number of days >= 1"))
+    if not _fraction(alpha):
+        problems.append(Problem("alpha", "must be between 0 and 1"))
+    if not _fraction(power) or (_fraction(alpha) and power <= alpha):
+        problems.append(Problem("power", "must be between alpha and 1"))
+    if problems:
+        raise InputError(problems)
+    return counts, weights, arm_names
+
+
+def _whole(value: object) -> bool:
+    return isinstance(value, int | np.integer) and not isinstance(value, bool)
+
+
+def _fraction(value: object) -> bool:
+    return (isinstance(value, float | int | np.floating) and not isinstance(value, bool)
+            and 0.0 < float(value) < 1.0)
+
+
+def _days(count: int) -> str:
+    return f"{count} day" if count == 1 else f"{count} days"
+
+
+def _round(value: float | None, digits: int) -> float | None:
+    return None if value is None else round(value, digits)
+
+
+__all__ = ["InflowSensitivity", "Sensitivity", "ShareShiftSensitivity", "chisquare_power",
+           "inflow_noncentrality", "inflow_power", "required_noncentrality", "sensitivity",
+           "smallest_inflow", "window_family_size"]

@@ -1,0 +1,158 @@
+"""From stored rows to a stored diagnosis: load the table, run the detectors, keep a snapshot,
+derive alerts. Every function runs inside the caller's transaction."""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+from typing import Any
+
+import pandas as pd
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from detectors import (
+    AllocationSchedule,
+    Diagnosis,
+    DiagnosisConfig,
+    InputError,
+    ObservationTable,
+    daily_series,
+    diagnose,
+)
+from detectors.data import STAT_FIELDS
+
+from .alerting import AlertChanges, sync_alerts
+from .db.models import DiagnosisSnapshot, Experiment, Observation, utcnow
+from .http import entity_tag, json_safe
+
+NO_DATA = "no_data"
+
+
+@dataclass
+class Refresh:
+    """The outcome of re-diagnosing an experiment."""
+
+    snapshot: DiagnosisSnapshot
+    diagnosis: Diagnosis | None
+    alerts: AlertChanges
+    new_version: bool
+
+
+def schedule_for(experiment: Experiment) -> AllocationSchedule:
+    return AllocationSchedule.from_steps(experiment.arms, experiment.allocation)
+
+
+def stored_rows(session: Session, experiment_id: str, *, first: dt.date | None = None,
+                last: dt.date | None = None) -> list[Observation]:
+    query = select(Observation).where(Observation.experiment_id == experiment_id)
+    if first is not None:
+        query = query.where(Observation.date >= first)
+    if last is not None:
+        query = query.where(Observation.date <= last)
+    return list(session.scalars(query.order_by(Observation.date, Observation.arm,
+                                               Observation.source)))
+
+
+def rows_to_frame(rows: list[Observation]) -> pd.DataFrame:
+    """The flat layout the detectors read: date, arm, source, entered, NAME.n/.sum/.sum_sq."""
+    names = sorted({name for row in rows for name in row.metrics})
+    columns: dict[str, list[Any]] = {
+        "date": [row.date.isoformat() for row in rows],
+        "arm": [row.arm for row in rows],
+        "source": [row.source for row in rows],
+        "entered": [row.entered for row in rows],
+    }
+    for name in names:
+        for stat in STAT_FIELDS:
+            columns[f"{name}.{stat}"] = [row.metrics[name][stat] if name in row.metrics
+                                         else None for row in rows]
+    return pd.DataFrame(columns)
+
+
+def load_table(session: Session, experiment: Experiment) -> ObservationTable | None:
+    """All stored rows of the experiment as an observation table (``None`` without rows)."""
+    rows = stored_rows(session, experiment.id)
+    if not rows:
+        return None
+    return ObservationTable.from_frame(rows_to_frame(rows), experiment.arms,
+                                       start=experiment.start_date)
+
+
+def latest_snapshot(session: Session, experiment_id: str) -> DiagnosisSnapshot | None:
+    return session.scalar(select(DiagnosisSnapshot)
+                          .where(DiagnosisSnapshot.experiment_id == experiment_id)
+                          .order_by(DiagnosisSnapshot.version.desc()).limit(1))
+
+
+@dataclass(frozen=True)
+class SnapshotSummary:
+    version: int
+    status: str
+    as_of: dt.date | None
+    created_at: dt.datetime
+
+
+def latest_summaries(session: Session, experiment_ids: list[str]) -> dict[str, SnapshotSummary]:
+    """The latest snapshot's summary per experiment, in one query and without documents."""
+    if not experiment_ids:
+        return {}
+    latest = (select(DiagnosisSnapshot.experiment_id,
+                     func.max(DiagnosisSnapshot.version).label("version"))
+              .where(DiagnosisSnapshot.experiment_id.in_(experiment_ids))
+              .group_by(DiagnosisSnapshot.experiment_id).subquery())
+    rows = session.execute(
+        select(DiagnosisSnapshot.experiment_id, DiagnosisSnapshot.version,
+               DiagnosisSnapshot.status, DiagnosisSnapshot.as_of, DiagnosisSnapshot.created_at)
+        .join(latest, (DiagnosisSnapshot.experiment_id == latest.c.experiment_id)
+              & (DiagnosisSnapshot.version == latest.c.version)))
+    return {row[0]: SnapshotSummary(*row[1:]) for row in rows}
+
+
+def snapshot_version(session: Session, experiment_id: str, version: int
+                     ) -> DiagnosisSnapshot | None:
+    return session.scalar(select(DiagnosisSnapshot).where(
+        DiagnosisSnapshot.experiment_id == experiment_id, DiagnosisSnapshot.version == version))
+
+
+def refresh_diagnosis(session: Session, experiment: Experiment, *,
+                      config: DiagnosisConfig | None = None,
+                      now: dt.datetime | None = None) -> Refresh:
+    """Diagnose every stored row, keep the result as a new snapshot if it differs from the
+    latest one, and sync the alerts. The caller holds the experiment's write lock."""
+    now = now or utcnow()
+    table = load_table(session, experiment)
+    schedule = schedule_for(experiment)
+    diagnosis: Diagnosis | None = None
+    document: dict[str, Any] | None = None
+    series: dict[str, Any] | None = None
+    if table is not None and int(table.entered.sum()) > 0:
+        diagnosis = diagnose(table, schedule, config=config, experiment=experiment.id)
+        document = json_safe(diagnosis.to_dict())
+        series = json_safe(daily_series(table, schedule, diagnosis))
+    elif table is not None:
+        series = json_safe(daily_series(table, schedule, None))
+    status = diagnosis.status if diagnosis else NO_DATA
+    etag, series_etag = entity_tag(document), entity_tag(series)
+
+    latest = latest_snapshot(session, experiment.id)
+    new_version = latest is None or (latest.etag, latest.series_etag) != (etag, series_etag)
+    if new_version:
+        snapshot = DiagnosisSnapshot(
+            experiment_id=experiment.id, version=(latest.version + 1) if latest else 1,
+            as_of=diagnosis.as_of if diagnosis else None, status=status, document=document,
+            series=series, etag=etag, series_etag=series_etag, created_at=now)
+        session.add(snapshot)
+        session.flush()
+    else:
+        assert latest is not None
+        snapshot = latest
+    changes = sync_alerts(session, experiment, diagnosis, diagnosis_version=snapshot.version,
+                          now=now)
+    return Refresh(snapshot, diagnosis, changes, new_version)
+
+
+__all__ = ["NO_DATA", "InputError", "Refresh", "SnapshotSummary", "latest_snapshot",
+           "latest_summaries", "load_table",
+           "refresh_diagnosis", "rows_to_frame", "schedule_for", "snapshot_version",
+           "stored_rows"]

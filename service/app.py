@@ -1,0 +1,101 @@
+"""The FastAPI application factory: ``uvicorn --factory service.app:create_app``."""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+from importlib.metadata import PackageNotFoundError, version
+from typing import Any
+
+from fastapi import FastAPI
+from fastapi.openapi.utils import get_openapi
+from pydantic import BaseModel
+from starlette.concurrency import run_in_threadpool
+
+from .db.session import Database
+from .http import BodyLimitMiddleware
+from .problems import PROBLEM_MEDIA_TYPE, install_problem_handlers
+from .routers import (
+    alerts,
+    diagnosis,
+    experiments,
+    health,
+    observations,
+    problem_types,
+    reweight,
+    tokens,
+)
+from .schemas.common import ProblemDetails
+from .settings import Settings
+
+logger = logging.getLogger("inrush.service")
+
+DESCRIPTION = """\
+Inrush watches the daily flow of units into each arm of an experiment, finds the days and
+entry sources that broke the planned sample ratio, keeps alerts, and re-estimates the effect by
+entry cohort. Errors are RFC 9457 problem details (`application/problem+json`).
+Authenticate with `Authorization: Bearer TOKEN`; scopes are read < write < admin.
+"""
+
+ROUTERS = (health.router, experiments.router, observations.router, diagnosis.router,
+           reweight.router, alerts.router, tokens.router, problem_types.router)
+# Models referenced from hand-written OpenAPI fragments (bodies parsed by the service itself).
+DOCUMENTED_MODELS: list[type[BaseModel]] = [ProblemDetails, *observations.DOCUMENTED_MODELS]
+_PROBLEM_CONTENT = {PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/ProblemDetails"}}}
+
+
+def package_version() -> str:
+    try:
+        return version("inrush")
+    except PackageNotFoundError:
+        return "0.0.0"
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    """Build the app; without ``settings`` they are read from ``INRUSH_*`` variables."""
+    settings = settings or Settings()
+    database = Database(settings.database_url, busy_timeout_ms=settings.sqlite_busy_timeout_ms)
+
+    @asynccontextmanager
+    async def lifespan(_: FastAPI) -> AsyncIterator[None]:
+        if settings.migrate_on_start:
+            await run_in_threadpool(database.migrate)
+        try:
+            yield
+        finally:
+            database.dispose()
+
+    app = FastAPI(title="Inrush", version=package_version(), description=DESCRIPTION,
+                  lifespan=lifespan)
+    app.state.settings = settings
+    app.state.database = database
+    install_problem_handlers(app)
+    app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,
+                       public_url=settings.public_url)
+    for router in ROUTERS:
+        app.include_router(router)
+    app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]
+    return app
+
+
+def _openapi(app: FastAPI) -> dict[str, Any]:
+    if app.openapi_schema is None:
+        schema = get_openapi(title=app.title, version=app.version,
+                             description=app.description, routes=app.routes)
+        components = schema.setdefault("components", {}).setdefault("schemas", {})
+        for model in DOCUMENTED_MODELS:
+            model_schema = model.model_json_schema(ref_template="#/components/schemas/{model}")
+            components.update(model_schema.pop("$defs", {}))
+            components[model.__name__] = model_schema
+        # Every error is a problem document, including FastAPI's automatic 422.
+        for operation in (op for ops in schema["paths"].values() for op in ops.values()):
+            for status, response in operation.get("responses", {}).items():
+                if status.isdigit() and int(status) >= 400:
+                    response["content"] = _PROBLEM_CONTENT
+                    if status == "422":
+                        response["description"] = "Invalid input"
+        for unused in ("HTTPValidationError", "ValidationError"):
+            components.pop(unused, None)
+        app.openapi_schema = schema
+    return app.openapi_schema

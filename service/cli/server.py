@@ -1,0 +1,108 @@
+"""``inrush serve`` and ``inrush openapi``."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from . import EXIT_FAILURE, EXIT_OK
+
+
+def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+    serve = subparsers.add_parser(
+        "serve", help="run the HTTP service",
+        description="Apply database migrations, then serve the API with uvicorn. Settings come "
+                    "from INRUSH_* environment variables (INRUSH_DATABASE_URL, "
+                    "INRUSH_ADMIN_TOKEN, INRUSH_PUBLIC_URL, INRUSH_MAX_BODY_BYTES, "
+                    "INRUSH_MAX_ROWS).")
+    serve.add_argument("--host", default="127.0.0.1", help="interface (default 127.0.0.1)")
+    serve.add_argument("--port", type=int, default=8000, help="port (default 8000)")
+    serve.add_argument("--workers", type=int, default=1, help="worker processes (default 1)")
+    serve.add_argument("--log-level", default="info",
+                       choices=["critical", "error", "warning", "info", "debug"])
+    serve.set_defaults(handler=run_serve)
+
+    openapi = subparsers.add_parser(
+        "openapi", help="write the OpenAPI document of the API",
+        description="Print the OpenAPI document, or write it to --output.")
+    openapi.add_argument("--output", type=Path, help="file to write (default: stdout)")
+    openapi.add_argument("--check", action="store_true",
+                         help="exit 1 if --output differs from the app instead of writing it")
+    openapi.set_defaults(handler=run_openapi)
+
+
+def run_serve(args: argparse.Namespace) -> int:
+    import uvicorn
+    from pydantic import ValidationError
+    from sqlalchemy.exc import SQLAlchemyError
+
+    from ..db.session import Database
+    from ..settings import Settings
+
+    if args.workers < 1:
+        print("inrush serve: --workers must be at least 1", file=sys.stderr)
+        return EXIT_FAILURE
+    try:
+        settings = Settings()
+    except ValidationError as error:
+        print(f"inrush serve: invalid settings:\n{error}", file=sys.stderr)
+        return EXIT_FAILURE
+    # Migrate once here so that several workers do not race at startup.
+    try:
+        database = Database(settings.database_url)
+    except (SQLAlchemyError, ImportError) as error:
+        print(f"inrush serve: cannot use INRUSH_DATABASE_URL: {error}", file=sys.stderr)
+        return EXIT_FAILURE
+    try:
+        database.migrate()
+    except (SQLAlchemyError, ImportError) as error:
+        print(f"inrush serve: cannot prepare the database: {error}", file=sys.stderr)
+        return EXIT_FAILURE
+    finally:
+        database.dispose()
+    uvicorn.run("service.app:create_app", factory=True, host=args.host, port=args.port,
+                workers=args.workers, log_level=args.log_level,
+                log_config=_log_config(args.log_level))
+    return EXIT_OK
+
+
+def _log_config(level: str) -> dict[str, object]:
+    """Uvicorn's logging setup plus the service's own ``inrush`` loggers on the same stream."""
+    import copy
+
+    from uvicorn.config import LOGGING_CONFIG
+
+    config = copy.deepcopy(LOGGING_CONFIG)
+    config["loggers"]["inrush"] = {"handlers": ["default"], "level": level.upper(),
+                                   "propagate": False}
+    return config
+
+
+def openapi_text() -> str:
+    from ..app import create_app
+    from ..settings import Settings
+
+    # The document does not depend on settings; fixed ones keep it reproducible.
+    app = create_app(Settings(database_url="sqlite://", admin_token=None, public_url=None,
+                              migrate_on_start=False))
+    return json.dumps(app.openapi(), indent=2, sort_keys=True) + "\n"
+
+
+def run_openapi(args: argparse.Namespace) -> int:
+    text = openapi_text()
+    if args.output is None:
+        sys.stdout.write(text)
+        return EXIT_OK
+    if args.check:
+        current = args.output.read_text(encoding="utf-8") if args.output.exists() else ""
+        if current != text:
+            print(f"inrush openapi: {args.output} is out of date; run `make openapi`",
+                  file=sys.stderr)
+            return EXIT_FAILURE
+        return EXIT_OK
+    args.output.parent.mkdir(parents=True, exist_ok=True)
+    args.output.write_text(text, encoding="utf-8")
+    print(f"wrote {args.output}")
+    return EXIT_OK

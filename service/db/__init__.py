@@ -1,0 +1,1 @@
+"""Persistence: SQLAlchemy models and engine/session handling."""

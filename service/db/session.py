@@ -1,0 +1,115 @@
+"""Engine, sessions and migrations.
+
+SQLite gets WAL journaling, a busy timeout and enforced foreign keys on every connection, and
+write transactions start with ``BEGIN IMMEDIATE`` so that two writers queue on the lock instead
+of failing when a read transaction tries to upgrade. On PostgreSQL a writer locks the
+experiment's row (``SELECT ... FOR UPDATE``) so writes to one experiment are serialised.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+from alembic import command
+from alembic.config import Config
+from fastapi import Request
+from sqlalchemy import Engine, create_engine, event, text
+from sqlalchemy.engine import make_url
+from sqlalchemy.orm import Session, sessionmaker
+
+MIGRATIONS_DIR = Path(__file__).resolve().parent.parent / "migrations"
+_BEGIN_OPTION = "inrush_sqlite_begin"
+
+
+def make_engine(url: str, *, busy_timeout_ms: int = 30_000) -> Engine:
+    """An engine for ``url``; SQLite connections are configured for concurrent service use."""
+    parsed = make_url(url)
+    if parsed.get_backend_name() != "sqlite":
+        return create_engine(url, pool_pre_ping=True)
+    database = parsed.database or ""
+    if database and database != ":memory:" and not database.startswith("file:"):
+        Path(database).expanduser().resolve().parent.mkdir(parents=True, exist_ok=True)
+    engine = create_engine(url, connect_args={"check_same_thread": False,
+                                              "timeout": busy_timeout_ms / 1000})
+
+    @event.listens_for(engine, "connect")
+    def _configure(dbapi_connection: Any, _record: Any) -> None:
+        # Let SQLAlchemy's "begin" event below emit BEGIN instead of the driver.
+        dbapi_connection.isolation_level = None
+        cursor = dbapi_connection.cursor()
+        cursor.execute("PRAGMA journal_mode=WAL")
+        cursor.execute(f"PRAGMA busy_timeout={int(busy_timeout_ms)}")
+        cursor.execute("PRAGMA foreign_keys=ON")
+        cursor.execute("PRAGMA synchronous=NORMAL")
+        cursor.close()
+
+    @event.listens_for(engine, "begin")
+    def _begin(connection: Any) -> None:
+        mode = connection.get_execution_options().get(_BEGIN_OPTION, "DEFERRED")
+        connection.exec_driver_sql(f"BEGIN {mode}")
+
+    return engine
+
+
+class Database:
+    """The engine and session factory of one service instance."""
+
+    def __init__(self, url: str, *, busy_timeout_ms: int = 30_000) -> None:
+        self.url = url
+        self.engine = make_engine(url, busy_timeout_ms=busy_timeout_ms)
+        self.sessions = sessionmaker(self.engine, expire_on_commit=False)
+
+    @property
+    def dialect(self) -> str:
+        return self.engine.dialect.name
+
+    def migrate(self, revision: str = "head") -> None:
+        """Apply the Alembic migrations up to ``revision``."""
+        with self.engine.begin() as connection:
+            config = alembic_config(self.url)
+            config.attributes["connection"] = connection
+            command.upgrade(config, revision)
+
+    def current_revision(self) -> str | None:
+        with self.engine.connect() as connection:
+            from alembic.runtime.migration import MigrationContext
+
+            return MigrationContext.configure(connection).get_current_revision()
+
+    def ping(self) -> None:
+        """Raise if the database cannot be reached."""
+        with self.engine.connect() as connection:
+            connection.execute(text("SELECT 1"))
+
+    def dispose(self) -> None:
+        self.engine.dispose()
+
+
+def alembic_config(url: str) -> Config:
+    """A programmatic Alembic configuration (no alembic.ini needed at run time)."""
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS_DIR))
+    # ConfigParser interpolates '%': escape it so passwords with '%' survive.
+    config.set_main_option("sqlalchemy.url", url.replace("%", "%%"))
+    return config
+
+
+def begin_write(session: Session) -> None:
+    """Start the session's write transaction (``BEGIN IMMEDIATE`` on SQLite).
+
+    Any read transaction the request opened before (authentication) is ended first: a SQLite
+    read transaction that later writes fails at once if another writer committed meanwhile.
+    """
+    if session.in_transaction():
+        session.commit()
+    if session.get_bind().dialect.name == "sqlite":
+        session.connection(execution_options={_BEGIN_OPTION: "IMMEDIATE"})
+
+
+def get_session(request: Request) -> Iterator[Session]:
+    """FastAPI dependency: one session per request, closed (rolled back if open) at the end."""
+    database: Database = request.app.state.database
+    with database.sessions() as session:
+        yield session

@@ -1,0 +1,46 @@
+"""Helpers the routers share: links, lookups that answer 404, the per-experiment write lock."""
+
+from __future__ import annotations
+
+from fastapi import Request
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from ..db.models import Experiment
+from ..db.session import begin_write
+from ..problems import ProblemError
+from ..settings import Settings
+
+
+def base_url(request: Request) -> str:
+    settings: Settings = request.app.state.settings
+    return settings.base_url(str(request.base_url))
+
+
+def experiment_url(request: Request, experiment_id: str, suffix: str = "") -> str:
+    return f"{base_url(request)}/v1/experiments/{experiment_id}{suffix}"
+
+
+def not_found(experiment_id: str) -> ProblemError:
+    return ProblemError(404, f"There is no experiment {experiment_id!r}.")
+
+
+def get_experiment(session: Session, experiment_id: str) -> Experiment:
+    experiment = session.get(Experiment, experiment_id)
+    if experiment is None:
+        raise not_found(experiment_id)
+    return experiment
+
+
+def lock_experiment(session: Session, experiment_id: str) -> Experiment:
+    """Start the write transaction and lock the experiment (404 when it does not exist).
+
+    Writers of one experiment are serialised, so each diagnosis sees every committed row and
+    snapshot versions never collide.
+    """
+    begin_write(session)
+    experiment = session.scalar(select(Experiment).where(Experiment.id == experiment_id)
+                                .with_for_update())
+    if experiment is None:
+        raise not_found(experiment_id)
+    return experiment

@@ -1,0 +1,1 @@
+"""Pydantic v2 models of the HTTP API's request and response bodies."""

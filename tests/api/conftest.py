@@ -1,0 +1,155 @@
+"""Fixtures for the HTTP contract tests: an app on a fresh database per test.
+
+``database_url`` is parametrised over the backends named in ``INRUSH_TEST_BACKENDS`` (default
+``sqlite,postgres``). The PostgreSQL case creates its own database on the server at
+``INRUSH_TEST_POSTGRES_URL`` (default postgresql+psycopg://postgres@127.0.0.1:5432/test) and
+drops it afterwards; it is skipped with the reason when the server cannot be reached.
+"""
+
+from __future__ import annotations
+
+import functools
+import os
+import secrets
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import pytest
+from apihelpers import EXPERIMENT
+from fastapi import FastAPI
+from fastapi.testclient import TestClient
+from sqlalchemy import func, select
+from sqlalchemy.engine import make_url
+
+from service.app import create_app
+from service.db import models
+from service.settings import Settings
+from service.tokens import Scope, create_token
+
+ADMIN_TOKEN = "test-admin-" + secrets.token_hex(8)
+POSTGRES_URL = os.environ.get("INRUSH_TEST_POSTGRES_URL",
+                              "postgresql+psycopg://postgres@127.0.0.1:5432/test")
+TABLES = (models.Experiment, models.Observation, models.DiagnosisSnapshot, models.Alert,
+          models.AlertEvent, models.ApiToken)
+
+
+def _backends() -> list[Any]:
+    wanted = os.environ.get("INRUSH_TEST_BACKENDS", "sqlite,postgres").split(",")
+    params = []
+    for name in (w.strip() for w in wanted if w.strip()):
+        marks = [pytest.mark.postgres] if name == "postgres" else []
+        params.append(pytest.param(name, marks=marks, id=name))
+    return params
+
+
+@functools.cache
+def _postgres_problem() -> str | None:
+    """Why PostgreSQL cannot be used, or ``None`` when it can."""
+    try:
+        import psycopg
+    except ImportError:
+        return "psycopg is not installed"
+    try:
+        with psycopg.connect(_libpq(POSTGRES_URL), connect_timeout=3) as connection:
+            connection.execute("SELECT 1")
+    except psycopg.Error as error:
+        return f"PostgreSQL at {POSTGRES_URL} is unreachable: {error}".strip()
+    return None
+
+
+def _libpq(url: str) -> str:
+    return make_url(url).set(drivername="postgresql").render_as_string(hide_password=False)
+
+
+@pytest.fixture(params=_backends())
+def database_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
+    if request.param == "sqlite":
+        yield f"sqlite:///{tmp_path / 'inrush.db'}"
+        return
+    problem = _postgres_problem()
+    if problem:
+        pytest.skip(problem)
+    import psycopg
+
+    name = f"inrush_test_{secrets.token_hex(6)}"
+    admin = _libpq(POSTGRES_URL)
+    with psycopg.connect(admin, autocommit=True) as connection:
+        connection.execute(f'CREATE DATABASE "{name}"')
+    try:
+        yield make_url(POSTGRES_URL).set(database=name).render_as_string(hide_password=False)
+    finally:
+        with psycopg.connect(admin, autocommit=True) as connection:
+            connection.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+
+
+@pytest.fixture
+def settings(database_url: str) -> Settings:
+    return Settings(database_url=database_url, admin_token=ADMIN_TOKEN, public_url=None,
+                    max_body_bytes=2 * 1024 * 1024, max_rows=5000)
+
+
+@pytest.fixture
+def app(settings: Settings) -> FastAPI:
+    return create_app(settings)
+
+
+@pytest.fixture
+def anonymous(app: FastAPI) -> Iterator[TestClient]:
+    """A client without credentials (entering it runs the migrations)."""
+    with TestClient(app, raise_server_exceptions=False) as client:
+        yield client
+
+
+@pytest.fixture
+def client(anonymous: TestClient) -> TestClient:
+    """A client holding the bootstrap admin token."""
+    anonymous.headers["Authorization"] = f"Bearer {ADMIN_TOKEN}"
+    return anonymous
+
+
+@pytest.fixture
+def token_for(app: FastAPI, anonymous: TestClient) -> Callable[[str], str]:
+    """Mint a stored token of a scope; returns the bearer value."""
+
+    def mint(scope: str, name: str | None = None) -> str:
+        with app.state.database.sessions.begin() as session:
+            _, plain = create_token(session, Scope.parse(scope), name)
+        return plain
+
+    return mint
+
+
+@pytest.fixture
+def counts(app: FastAPI, anonymous: TestClient) -> Callable[[], dict[str, int]]:
+    """Row counts of every table, to check that a refused request wrote nothing."""
+
+    def count() -> dict[str, int]:
+        with app.state.database.sessions() as session:
+            return {model.__tablename__: int(session.scalar(
+                select(func.count()).select_from(model)) or 0) for model in TABLES}
+
+    return count
+
+
+@pytest.fixture
+def stored(app: FastAPI, anonymous: TestClient) -> Callable[[str], list[dict[str, Any]]]:
+    """The stored observation rows of an experiment, straight from the database."""
+
+    def rows(experiment_id: str) -> list[dict[str, Any]]:
+        with app.state.database.sessions() as session:
+            found = session.scalars(select(models.Observation).where(
+                models.Observation.experiment_id == experiment_id).order_by(
+                models.Observation.date, models.Observation.arm, models.Observation.source))
+            return [{"date": o.date.isoformat(), "arm": o.arm, "source": o.source,
+                     "entered": o.entered, "metrics": o.metrics} for o in found]
+
+    return rows
+
+
+@pytest.fixture
+def experiment(client: TestClient) -> dict[str, Any]:
+    """The demo experiment, created."""
+    response = client.post("/v1/experiments", json=EXPERIMENT)
+    assert response.status_code == 201, response.text
+    return response.json()
