@@ -228,9 +228,9 @@ def families(reps: dict[str, int]) -> list[Task]:
 
 def default_reps(full: bool) -> dict[str, int]:
     if full:
-        reps = {"aa_2arm": 1200, "aa_3arm": 400, "aa_ramp": 400, "ref_unlabeled": 600,
-                "ref_labeled": 400, "mixed": 400}
-        reps |= {f"curve_{s:g}": 200 for s in POWER_CURVE_SIZES if s != 0.08}
+        reps = {"aa_2arm": 3000, "aa_3arm": 1000, "aa_ramp": 1000, "ref_unlabeled": 1000,
+                "ref_labeled": 600, "mixed": 600}
+        reps |= {f"curve_{s:g}": 300 for s in POWER_CURVE_SIZES if s != 0.08}
     else:
         reps = {"aa_2arm": 12, "aa_3arm": 4, "aa_ramp": 4, "ref_unlabeled": 10,
                 "ref_labeled": 6, "mixed": 6}

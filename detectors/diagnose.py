@@ -289,7 +289,9 @@ def diagnose(table: ObservationTable, schedule: AllocationSchedule, *,
         share_changes = share_changepoints(counts, planned, dates, arms, config.changepoints)
         for metric, cube in table.metrics.items():
             per_arm = engagement_changepoints(cube.sum(axis=2), dates, arms, config.changepoints)
-            engagement[metric] = {a: c for a, c in per_arm.items() if c}
+            # With two arms the reference arm's gap mirrors the other arm's: report it once.
+            mirrored = {arms[0]} if len(arms) == 2 else set()
+            engagement[metric] = {a: c for a, c in per_arm.items() if c and a not in mirrored}
             if not engagement[metric]:
                 del engagement[metric]
 

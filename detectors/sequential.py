@@ -11,6 +11,7 @@ value; a product of test martingales over consecutive periods is again a test ma
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass
 
 import numpy as np
@@ -71,7 +72,7 @@ def sequential_srm(counts: np.ndarray, planned: np.ndarray,
     changes = np.flatnonzero(np.any(planned[1:] != planned[:-1], axis=1)) + 1
     bounds = np.concatenate([[0], changes, [n_days]])
     carried = 0.0
-    for begin, stop in zip(bounds[:-1], bounds[1:], strict=True):  # one pass per ramp step
+    for begin, stop in itertools.pairwise(bounds):  # one pass per ramp step
         cumulative = np.cumsum(counts[begin:stop], axis=0)
         period = log_bayes_factor(cumulative, planned[begin], concentration)
         log_bf[begin:stop] = carried + period

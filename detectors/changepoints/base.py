@@ -120,18 +120,19 @@ class ChangepointConfig:
 class SegmentCost(BaseCost):
     """A ruptures cost computed from cumulative sums.
 
-    Subclasses implement :meth:`errors`, the cost of the segments ``[start, end)`` for many
-    starts at once; :meth:`error` (what ruptures' own estimators call) is its scalar case, so
-    both always agree. ``fit`` must set ``signal`` (ruptures reads its length) and the
-    cumulative sums, making each segment cost O(arms) whatever its length.
+    Subclasses implement :meth:`errors`, the costs of many segments ``[start, end)`` at once
+    (``starts`` and ``ends`` broadcast against each other); :meth:`error`, what ruptures' own
+    estimators call, is its scalar case, so both always agree. ``fit`` must set ``signal``
+    (ruptures reads its length) and the cumulative sums, making each segment cost O(arms)
+    whatever its length. Entries with ``start >= end`` are meaningless and may be NaN.
     """
 
     signal: np.ndarray
     min_size: int
 
     @abc.abstractmethod
-    def errors(self, starts: np.ndarray, end: int) -> np.ndarray:
-        """Costs of the segments ``[s, end)`` for each ``s`` in ``starts``."""
+    def errors(self, starts: np.ndarray, ends: np.ndarray | int) -> np.ndarray:
+        """Costs of the segments ``[start, end)``, broadcasting ``starts`` against ``ends``."""
 
     def error(self, start: int, end: int) -> float:
         if end - start < self.min_size:

@@ -62,27 +62,36 @@ class MultinomialShareCost(SegmentCost):
         per_regime[np.arange(len(units)), regime_of_day.ravel()] = units
         self.signal = signal
         self._regimes = regimes
-        self._cum_observed = _cumulative(counts)
-        self._cum_expected = _cumulative(units[:, None] * weights)
-        self._cum_regime_units = _cumulative(per_regime)
+        # Arm-major (arms, days + 1) so that each arm's segment sums are one contiguous lookup.
+        self._cum_observed = np.ascontiguousarray(_cumulative(counts).T)
+        self._cum_expected = np.ascontiguousarray(_cumulative(units[:, None] * weights).T)
+        self._cum_regime_units = np.ascontiguousarray(_cumulative(per_regime).T)
         self._cum_plan_loglik = _cumulative(xlogy(counts, weights).sum(axis=1))
         return self
 
-    def errors(self, starts: np.ndarray, end: int) -> np.ndarray:
-        observed = self._cum_observed[end] - self._cum_observed[starts]
-        expected = self._cum_expected[end] - self._cum_expected[starts]
-        regime_units = self._cum_regime_units[end] - self._cum_regime_units[starts]
-        tilt = np.divide(observed, expected, out=np.zeros_like(observed), where=expected > 0)
-        normaliser = tilt @ self._regimes.T
-        loglik = (self._cum_plan_loglik[end] - self._cum_plan_loglik[starts]
-                  + xlogy(observed, tilt).sum(axis=1)
-                  - xlogy(regime_units, normaliser).sum(axis=1))
+    def errors(self, starts: np.ndarray, ends: np.ndarray | int) -> np.ndarray:
+        loglik = self._cum_plan_loglik[ends] - self._cum_plan_loglik[starts]
+        normalisers = [np.zeros_like(loglik) for _ in self._regimes]
+        # Loops over arms and allocation regimes only (a handful each), never over days.
+        for arm, (cum_observed, cum_expected) in enumerate(
+                zip(self._cum_observed, self._cum_expected, strict=True)):
+            observed = cum_observed[ends] - cum_observed[starts]
+            seen = observed > 0
+            tilt = np.divide(observed, cum_expected[ends] - cum_expected[starts],
+                             out=np.ones_like(loglik), where=seen)
+            loglik += observed * np.log(tilt)
+            tilt[~seen] = 0.0
+            for normaliser, weight in zip(normalisers, self._regimes[:, arm], strict=True):
+                normaliser += weight * tilt
+        for normaliser, cum_units in zip(normalisers, self._cum_regime_units, strict=True):
+            units = cum_units[ends] - cum_units[starts]
+            loglik -= units * np.log(np.where(units > 0, normaliser, 1.0))
         return -2.0 * loglik
 
     def ratios(self, start: int, end: int) -> np.ndarray:
         """Observed over planned units per arm in ``[start, end)`` (the tilt ``r``)."""
-        observed = self._cum_observed[end] - self._cum_observed[start]
-        expected = self._cum_expected[end] - self._cum_expected[start]
+        observed = self._cum_observed[:, end] - self._cum_observed[:, start]
+        expected = self._cum_expected[:, end] - self._cum_expected[:, start]
         return np.divide(observed, expected, out=np.ones_like(observed), where=expected > 0)
 
 
@@ -123,10 +132,10 @@ class GaussianGapCost(SegmentCost):
         self._cum_wyy = _cumulative(weight * centred * centred)
         return self
 
-    def errors(self, starts: np.ndarray, end: int) -> np.ndarray:
-        w = self._cum_w[end] - self._cum_w[starts]
-        wy = self._cum_wy[end] - self._cum_wy[starts]
-        wyy = self._cum_wyy[end] - self._cum_wyy[starts]
+    def errors(self, starts: np.ndarray, ends: np.ndarray | int) -> np.ndarray:
+        w = self._cum_w[ends] - self._cum_w[starts]
+        wy = self._cum_wy[ends] - self._cum_wy[starts]
+        wyy = self._cum_wyy[ends] - self._cum_wyy[starts]
         explained = np.divide(wy * wy, w, out=np.zeros_like(w), where=w > 0)
         return np.maximum(wyy - explained, 0.0)
 
@@ -179,10 +188,11 @@ class GaussianMeanCost(SegmentCost):
         self._cum_yy = _cumulative(centred * centred)
         return self
 
-    def errors(self, starts: np.ndarray, end: int) -> np.ndarray:
-        length = end - np.asarray(starts)
-        total = self._cum_y[end] - self._cum_y[starts]
-        return np.maximum(self._cum_yy[end] - self._cum_yy[starts] - total * total / length, 0.0)
+    def errors(self, starts: np.ndarray, ends: np.ndarray | int) -> np.ndarray:
+        length = np.asarray(ends) - np.asarray(starts)
+        total = self._cum_y[ends] - self._cum_y[starts]
+        return np.maximum(self._cum_yy[ends] - self._cum_yy[starts] - total * total / length,
+                          0.0)
 
 
 def engagement_gap(stats: np.ndarray, arm: int) -> np.ndarray:

@@ -8,7 +8,6 @@ segment.
 
 from __future__ import annotations
 
-import datetime as dt
 from collections.abc import Sequence
 
 import numpy as np
@@ -83,23 +82,28 @@ def engagement_changepoints(stats: np.ndarray, dates: np.ndarray, arms: Sequence
     """
     config = config or ChangepointConfig()
     stats, days = _check_stats(stats, dates, arms)
-    result: dict[str, tuple[EngagementChangepoint, ...]] = {}
-    for index, arm in enumerate(arms):
-        signal = engagement_gap(stats, index)
-        used = signal[:, 1] > 0
-        units = float(stats[used, :, 0].sum())
-        if used.sum() < 2:
-            result[arm] = ()
-            continue
-        cost = GaussianGapCost(min_size=config.min_size)
-        ends = breakpoints(cost, signal, config.penalty_for(1, units),
-                           min_size=config.min_size, jump=config.jump)
-        bounds = [0, *ends]
-        result[arm] = tuple(
-            EngagementChangepoint(days[change].item(), cost.mean(start, change),
-                                  cost.mean(change, stop))
-            for start, change, stop in zip(bounds, bounds[1:-1], bounds[2:], strict=False))
-    return result
+    if len(arms) == 2:
+        # With two arms the second arm's gap is exactly minus the first's, with equal weights.
+        first = _gap_changepoints(stats, 0, days, config)
+        return {arms[0]: first, arms[1]: tuple(
+            EngagementChangepoint(c.date, -c.before, -c.after) for c in first)}
+    return {arm: _gap_changepoints(stats, index, days, config) for index, arm in enumerate(arms)}
+
+
+def _gap_changepoints(stats: np.ndarray, arm: int, days: np.ndarray,
+                      config: ChangepointConfig) -> tuple[EngagementChangepoint, ...]:
+    signal = engagement_gap(stats, arm)
+    used = signal[:, 1] > 0
+    if used.sum() < 2:
+        return ()
+    cost = GaussianGapCost(min_size=config.min_size)
+    ends = breakpoints(cost, signal, config.penalty_for(1, float(stats[used, :, 0].sum())),
+                       min_size=config.min_size, jump=config.jump)
+    bounds = [0, *ends]
+    return tuple(
+        EngagementChangepoint(days[change].item(), cost.mean(start, change),
+                              cost.mean(change, stop))
+        for start, change, stop in zip(bounds, bounds[1:-1], bounds[2:], strict=False))
 
 
 def _check_days(dates: np.ndarray, length: int) -> np.ndarray:

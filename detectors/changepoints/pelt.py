@@ -5,13 +5,17 @@ segment one Python call at a time. Without changes in the data PELT's pruning (K
 Fearnhead & Eckley 2012) removes almost nothing, so a 180-day series costs ~16,000 calls, about
 16 ms even for the cheapest cost. :class:`VectorisedPelt` keeps ruptures' estimator, its
 parameters and its recursion (same candidate ends, same admissible starts, same pruning rule
-and tie-breaking) and only asks a :class:`~.base.SegmentCost` for all admissible starts of an
-end at once. Costs without that method fall back to ruptures' own loop.
+and tie-breaking) but takes the costs of all admissible starts of an end in one numpy step:
+from a table of every segment cost computed in one broadcast call for series of up to 400
+days, or from one :meth:`~.base.SegmentCost.errors` call per end beyond. Costs that are not
+:class:`~.base.SegmentCost` run ruptures' own loop. tests/unit/test_changepoints.py checks that
+the breakpoints equal those of ruptures' ``Pelt``.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 
 import numpy as np
 import ruptures as rpt
@@ -34,34 +38,60 @@ class VectorisedPelt(rpt.Pelt):
         if not isinstance(cost, SegmentCost):
             return super()._seg(pen)
         n, min_size, jump = self.n_samples, self.min_size, self.jump
+        segment_costs = _segment_costs(cost, n)
         ends = [k for k in range(0, n, jump) if k >= min_size] + [n]
-        best = np.full(n + 1, np.inf)  # best[t]: penalised cost of the best partition of [0, t)
+        # best[t]: penalised cost of the best partition of [0, t) (inf: none exists). Python
+        # lists, because scalar reads and writes on them are faster than on numpy arrays.
+        best = [math.inf] * (n + 1)
         best[0] = 0.0
-        previous = np.zeros(n + 1, dtype=np.int64)
-        has_partition = np.zeros(n + 1, dtype=bool)
-        has_partition[0] = True
-        admissible = np.empty(0, dtype=np.int64)
+        previous = [0] * (n + 1)
+        # as_start[t]: best[t] while t is an admissible start, inf once pruned or not yet
+        # admitted; a slice of it replaces ruptures' list of admissible starts.
+        as_start = np.full(n + 1, np.inf)
         for end in ends:
-            newest = math.floor((end - min_size) / jump) * jump
-            if has_partition[newest]:
-                admissible = np.append(admissible, newest)
-            if admissible.size == 0:
+            newest = (end - min_size) // jump * jump
+            as_start[newest] = best[newest]  # ruptures appends this start at every end
+            starts = as_start[: newest + 1]
+            totals = starts + segment_costs(newest + 1, end)
+            winner = int(totals.argmin())  # first minimum, as ruptures' min() over the list
+            value = float(totals[winner])
+            if value == math.inf:
                 continue
-            totals = best[admissible] + cost.errors(admissible, end) + pen
-            winner = int(np.argmin(totals))
-            best[end] = totals[winner]
-            previous[end] = admissible[winner]
-            has_partition[end] = True
+            best[end] = value + pen
+            previous[end] = winner
             # PELT's pruning: a start that cannot beat the optimum even before paying the
             # penalty of a further change can never become optimal later.
-            admissible = admissible[totals <= best[end] + pen]
+            np.putmask(starts, totals > value + pen, math.inf)
         partition: dict[tuple[int, int], float] = {}
         end = n
         while end > 0:
             start = int(previous[end])
-            partition[(start, end)] = float(cost.errors(np.array([start]), end)[0]) + pen
+            partition[(start, end)] = cost.error(start, end) + pen
             end = start
         return partition
+
+
+# Up to this many days every segment cost is computed in one broadcast call (a table of
+# (days + 1)^2 entries per arm); longer series are costed one end at a time.
+_TABLE_DAYS = 400
+
+
+def _segment_costs(cost: SegmentCost, n: int) -> Callable[[int, int], np.ndarray]:
+    """``f(k, end)``: costs of ``[t, end)`` for ``t = 0 .. k - 1``, from a table if small."""
+    if n > _TABLE_DAYS:
+        def one_end(count: int, end: int) -> np.ndarray:
+            with np.errstate(all="ignore"):  # starts after the last admissible are not read
+                return cost.errors(np.arange(count), end)
+
+        return one_end
+    positions = np.arange(n + 1)
+    with np.errstate(all="ignore"):  # entries with start >= end are never read
+        table = cost.errors(positions[None, :], positions[:, None])  # table[end, start]
+
+    def from_table(count: int, end: int) -> np.ndarray:
+        return table[end, :count]
+
+    return from_table
 
 
 def breakpoints(cost: SegmentCost, signal: np.ndarray, penalty: float, *, min_size: int = 1,

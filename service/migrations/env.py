@@ -9,7 +9,7 @@ from __future__ import annotations
 from alembic import context
 from sqlalchemy import Connection, text
 
-from service.db.models import Base
+from service.db import load_models
 from service.db.session import make_engine
 from service.settings import Settings
 
@@ -17,7 +17,7 @@ from service.settings import Settings
 _MIGRATION_LOCK_ID = 0x1E5C_2026_0001
 
 config = context.config
-target_metadata = Base.metadata
+target_metadata = load_models()
 
 
 def _run(connection: Connection) -> None:

@@ -23,15 +23,13 @@ from sqlalchemy import func, select
 from sqlalchemy.engine import make_url
 
 from service.app import create_app
-from service.db import models
+from service.db import load_models, models
 from service.settings import Settings
 from service.tokens import Scope, create_token
 
 ADMIN_TOKEN = "test-admin-" + secrets.token_hex(8)
 POSTGRES_URL = os.environ.get("INRUSH_TEST_POSTGRES_URL",
                               "postgresql+psycopg://postgres@127.0.0.1:5432/test")
-TABLES = (models.Experiment, models.Observation, models.DiagnosisSnapshot, models.Alert,
-          models.AlertEvent, models.ApiToken)
 
 
 def _backends() -> list[Any]:
@@ -123,11 +121,12 @@ def token_for(app: FastAPI, anonymous: TestClient) -> Callable[[str], str]:
 @pytest.fixture
 def counts(app: FastAPI, anonymous: TestClient) -> Callable[[], dict[str, int]]:
     """Row counts of every table, to check that a refused request wrote nothing."""
+    tables = load_models().sorted_tables
 
     def count() -> dict[str, int]:
         with app.state.database.sessions() as session:
-            return {model.__tablename__: int(session.scalar(
-                select(func.count()).select_from(model)) or 0) for model in TABLES}
+            return {table.name: int(session.scalar(select(func.count()).select_from(table)) or 0)
+                    for table in tables}
 
     return count
 

@@ -1,0 +1,278 @@
+"""Server-side charts for the status page: matplotlib (Agg) drawn to inline SVG.
+
+Every function takes the plain documents the API serves (series, reweight) and returns an
+``<svg>`` element as text; no JavaScript and nothing fetched from elsewhere. The look is
+Inrush's own: deep teal, ochre, slate and brick on a warm paper background. Each series also
+differs by line style and marker, and flagged days by hatching, so the charts read in
+greyscale and for colour-blind readers. Every chart has a title and labelled axes.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import html
+import io
+import re
+import threading
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import matplotlib.dates as mdates
+from matplotlib import rc_context
+from matplotlib.axes import Axes
+from matplotlib.backends.backend_svg import FigureCanvasSVG
+from matplotlib.figure import Figure
+from matplotlib.patches import Patch
+from matplotlib.ticker import PercentFormatter
+
+PAPER = "#F6F3EA"
+INK = "#1E2A2F"
+GRID = "#DAD4C3"
+TEAL = "#1F5F5B"
+OCHRE = "#B9822A"
+SLATE = "#56646D"
+BRICK = "#9E4330"
+MOSS = "#66783A"
+PLUM = "#654A6E"
+
+
+@dataclass(frozen=True, slots=True)
+class Style:
+    color: str
+    linestyle: str | tuple[int, tuple[int, ...]]
+    marker: str
+
+
+# One style per arm / source, in order; colour, dash and marker all differ.
+STYLES: tuple[Style, ...] = (
+    Style(TEAL, "-", "o"), Style(OCHRE, "--", "s"), Style(SLATE, ":", "^"),
+    Style(BRICK, "-.", "D"), Style(MOSS, (0, (5, 1, 1, 1, 1, 1)), "v"),
+    Style(PLUM, (0, (1, 2)), "P"))
+ALERT_HATCH, WATCH_HATCH = "////", "...."
+
+_RC = {
+    "svg.fonttype": "none",  # keep text as text: searchable, selectable, crisp
+    "font.family": ["DejaVu Sans"],
+    "font.size": 9.5,
+    "axes.titlesize": 11.5,
+    "axes.titleweight": "bold",
+    "axes.titlelocation": "left",
+    "axes.labelsize": 9.5,
+    "axes.edgecolor": SLATE,
+    "axes.labelcolor": INK,
+    "axes.facecolor": PAPER,
+    "figure.facecolor": PAPER,
+    "text.color": INK,
+    "xtick.color": INK,
+    "ytick.color": INK,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "axes.grid": True,
+    "grid.color": GRID,
+    "grid.linewidth": 0.7,
+    "legend.frameon": False,
+    "legend.fontsize": 8.5,
+    "hatch.linewidth": 0.8,
+}
+# rcParams are process-wide and matplotlib is not thread-safe: one chart at a time.
+_LOCK = threading.Lock()
+
+
+def style(index: int) -> Style:
+    return STYLES[index % len(STYLES)]
+
+
+def _dates(labels: Sequence[str]) -> list[dt.date]:
+    return [dt.date.fromisoformat(d) for d in labels]
+
+
+def _to_svg(figure: Figure, title: str) -> str:
+    buffer = io.StringIO()
+    FigureCanvasSVG(figure)
+    figure.savefig(buffer, format="svg", bbox_inches="tight")
+    text = buffer.getvalue()
+    start = text.find("<svg")
+    svg = text[start:] if start >= 0 else text
+    label = html.escape(title, quote=True)
+    return re.sub(r"^<svg\b", f'<svg role="img" aria-label="{label}"', svg, count=1)
+
+
+def _mark_flagged(ax: Axes, days: Sequence[Mapping[str, Any]]) -> list[Patch]:
+    """Hatched bands over flagged days (alert: dense diagonal, watch: dots)."""
+    seen: set[str] = set()
+    for day in days:
+        severity = day.get("severity")
+        if not day.get("flagged") or severity not in ("alert", "watch"):
+            continue
+        when = dt.date.fromisoformat(day["date"])
+        color = BRICK if severity == "alert" else OCHRE
+        ax.axvspan(when - dt.timedelta(hours=12), when + dt.timedelta(hours=12),
+                   facecolor=color, alpha=0.14, edgecolor=color,
+                   hatch=ALERT_HATCH if severity == "alert" else WATCH_HATCH, linewidth=0,
+                   zorder=0)
+        seen.add(severity)
+    legend = []
+    if "alert" in seen:
+        legend.append(Patch(facecolor=BRICK, alpha=0.25, hatch=ALERT_HATCH, edgecolor=BRICK,
+                            label="flagged day (alert)"))
+    if "watch" in seen:
+        legend.append(Patch(facecolor=OCHRE, alpha=0.25, hatch=WATCH_HATCH, edgecolor=OCHRE,
+                            label="flagged day (watch)"))
+    return legend
+
+
+def _date_axis(ax: Axes) -> None:
+    locator = mdates.AutoDateLocator(minticks=3, maxticks=10)
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
+
+
+def _empty(title: str, message: str) -> str:
+    with _LOCK, rc_context(_RC):
+        figure = Figure(figsize=(7.5, 1.6))
+        ax = figure.add_subplot()
+        ax.set_title(title)
+        ax.set_xlabel("Day of entry")
+        ax.set_ylabel("")
+        ax.set_xticks([])
+        ax.set_yticks([])
+        ax.grid(False)
+        ax.text(0.5, 0.5, message, ha="center", va="center", transform=ax.transAxes)
+        return _to_svg(figure, title)
+
+
+def share_chart(series: Mapping[str, Any]) -> str:
+    """Observed daily share of each arm against its planned share, flagged days hatched."""
+    title = "Arm shares against the plan"
+    days = list(series.get("days", []))
+    if not days:
+        return _empty(title, "No days with data yet.")
+    dates = _dates([d["date"] for d in days])
+    with _LOCK, rc_context(_RC):
+        figure = Figure(figsize=(7.5, 3.4))
+        ax = figure.add_subplot()
+        handles = _mark_flagged(ax, days)
+        for i, arm in enumerate(series.get("arms", [])):
+            look = style(i)
+            observed = [_nan(d["arms"][arm]["observed_share"]) for d in days]
+            planned = [d["arms"][arm]["expected_share"] for d in days]
+            ax.plot(dates, observed, color=look.color, linestyle=look.linestyle,
+                    marker=look.marker, markersize=4, linewidth=1.6, label=f"{arm}: observed")
+            ax.step(dates, planned, where="mid", color=look.color, linestyle=(0, (2, 2)),
+                    linewidth=1.0, alpha=0.8, label=f"{arm}: planned")
+        ax.set_title(title)
+        ax.set_xlabel("Day of entry")
+        ax.set_ylabel("Share of the day's units")
+        ax.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
+        _date_axis(ax)
+        existing, labels = ax.get_legend_handles_labels()
+        ax.legend(existing + handles, labels + [h.get_label() for h in handles],
+                  ncol=3, loc="upper center", bbox_to_anchor=(0.5, -0.2))
+        return _to_svg(figure, title)
+
+
+def entrants_chart(series: Mapping[str, Any]) -> str:
+    """Units entered per day through each source, one panel per arm (shared scale)."""
+    title = "Entrants per source and arm"
+    arms = list(series.get("arms", []))
+    sources = list(series.get("sources", []))
+    days = list(series.get("days", []))
+    if not arms or not sources or not days:
+        return _empty(title, "No entrants yet.")
+    dates = _dates(series.get("dates") or [d["date"] for d in days])
+    with _LOCK, rc_context(_RC):
+        figure = Figure(figsize=(7.5, 2.2 + 1.7 * len(arms)))
+        axes = figure.subplots(len(arms), 1, sharex=True, sharey=True, squeeze=False)[:, 0]
+        for ax, arm in zip(axes, arms, strict=True):
+            _mark_flagged(ax, days)
+            for j, source in enumerate(sources):
+                look = style(j)
+                ax.plot(dates, source["entered"][arm], color=look.color,
+                        linestyle=look.linestyle, marker=look.marker, markersize=3.5,
+                        linewidth=1.4, label=source["source"])
+            ax.text(0.995, 0.97, f"arm {arm}", transform=ax.transAxes, ha="right", va="top",
+                    fontsize=9.5, fontweight="bold",
+                    bbox={"facecolor": PAPER, "edgecolor": SLATE, "boxstyle": "round,pad=0.3"})
+            ax.set_ylabel("Units entered")
+        axes[0].set_title(title)
+        axes[-1].set_xlabel("Day of entry")
+        _date_axis(axes[-1])
+        axes[-1].legend(ncol=min(4, len(sources)), loc="upper center",
+                        bbox_to_anchor=(0.5, -0.35), title="entry source")
+        return _to_svg(figure, title)
+
+
+def engagement_chart(series: Mapping[str, Any], metric: str) -> str:
+    """The daily mean of ``metric`` per entrant in each arm, flagged days hatched."""
+    title = f"Entrant engagement per arm: {metric}"
+    days = list(series.get("days", []))
+    if not days or metric not in series.get("metrics", []):
+        return _empty(title, f"No metric {metric!r} in the data.")
+    dates = _dates([d["date"] for d in days])
+    with _LOCK, rc_context(_RC):
+        figure = Figure(figsize=(7.5, 3.2))
+        ax = figure.add_subplot()
+        handles = _mark_flagged(ax, days)
+        for i, arm in enumerate(series.get("arms", [])):
+            look = style(i)
+            values = [_nan(d["arms"][arm]["engagement"].get(metric)) for d in days]
+            ax.plot(dates, values, color=look.color, linestyle=look.linestyle,
+                    marker=look.marker, markersize=4, linewidth=1.6, label=arm)
+        ax.set_title(title)
+        ax.set_xlabel("Day of entry")
+        ax.set_ylabel(f"Mean {metric} per entrant")
+        _date_axis(ax)
+        existing, labels = ax.get_legend_handles_labels()
+        ax.legend(existing + handles, labels + [h.get_label() for h in handles], ncol=4,
+                  loc="upper center", bbox_to_anchor=(0.5, -0.2))
+        return _to_svg(figure, title)
+
+
+def effect_chart(reweight: Mapping[str, Any]) -> str:
+    """Naive and re-weighted differences with 95% intervals, one row per compared arm."""
+    metric = reweight.get("metric", "metric")
+    title = f"Effect on {metric}: naive and re-weighted by entry cohort"
+    comparisons = list(reweight.get("comparisons", []))
+    if not comparisons:
+        return _empty(title, "No comparison available.")
+    with _LOCK, rc_context(_RC):
+        figure = Figure(figsize=(7.5, 1.5 + 0.9 * len(comparisons)))
+        ax = figure.add_subplot()
+        ticks, labels = [], []
+        kinds = (("naive", "naive (as randomised, all entrants)", SLATE, "o", "-"),
+                 ("adjusted", "re-weighted to the reference arm's cohort mix", TEAL, "s", "--"))
+        for row, comparison in enumerate(comparisons):
+            base = -row * 1.0
+            ticks.append(base)
+            labels.append(f"{comparison['arm']} vs reference")
+            for k, (key, label, color, marker, dash) in enumerate(kinds):
+                estimate = comparison.get(key) or {}
+                centre = estimate.get("difference")
+                if centre is None:
+                    continue
+                low = estimate.get("ci_low", centre)
+                high = estimate.get("ci_high", centre)
+                y = base + (0.18 if k == 0 else -0.18)
+                bars = ax.errorbar([centre], [y], xerr=[[centre - low], [high - centre]],
+                                   fmt=marker, color=color, ecolor=color, capsize=4,
+                                   markersize=6, linewidth=1.6,
+                                   label=label if row == 0 else None)
+                bars[-1][0].set_linestyle(dash)
+        ax.axvline(0.0, color=INK, linewidth=0.9, linestyle=":")
+        ax.set_yticks(ticks, labels)
+        ax.set_ylim(min(ticks) - 0.6, max(ticks) + 0.6)
+        ax.set_title(title)
+        ax.set_xlabel(f"Difference in mean {metric} per entrant (arm minus reference), "
+                      "95% interval")
+        ax.set_ylabel("Comparison")
+        ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.35), ncol=1)
+        return _to_svg(figure, title)
+
+
+def _nan(value: Any) -> float:
+    return float("nan") if value is None else float(value)

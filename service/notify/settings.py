@@ -1,0 +1,36 @@
+"""Notification settings, read from ``INRUSH_*`` environment variables."""
+
+from __future__ import annotations
+
+from pydantic import Field
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+class NotifySettings(BaseSettings):
+    """Webhook delivery settings; each field is ``INRUSH_<NAME>``."""
+
+    model_config = SettingsConfigDict(env_prefix="INRUSH_", extra="ignore")
+
+    public_url: str | None = Field(
+        None, description="base URL of the service as its clients see it; links in webhook "
+                          "payloads are absolute when set, paths otherwise")
+    webhook_allow_hosts: str = Field(
+        "", description="comma-separated host names (or literal addresses) that webhooks may "
+                        "target even though they resolve to private, loopback or link-local "
+                        "addresses (for receivers on the same network)")
+    notify_worker: bool = Field(
+        True, description="run the delivery worker inside the service process (0 to disable, "
+                          "e.g. in tests or when a separate process delivers)")
+    notify_poll_seconds: float = Field(2.0, gt=0, le=300,
+                                       description="how often the worker looks for due messages")
+    webhook_timeout_seconds: float = Field(10.0, gt=0, le=120,
+                                           description="total time allowed for one delivery")
+
+    def allowed_hosts(self) -> frozenset[str]:
+        return parse_hosts(self.webhook_allow_hosts)
+
+
+def parse_hosts(text: str) -> frozenset[str]:
+    """``"a.example, B.example"`` -> ``{"a.example", "b.example"}`` (lower case, no brackets)."""
+    return frozenset(h.strip().strip("[]").lower().rstrip(".") for h in text.split(",")
+                     if h.strip())

@@ -1,0 +1,1 @@
+"""Human status pages: ``GET /experiments`` and ``GET /experiments/{id}`` (HTML, no JS)."""

@@ -1,0 +1,43 @@
+"""/v1/alerts/{alert_id}/deliveries: the webhook notifications of an alert and their attempts."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Depends
+from sqlalchemy import select
+from sqlalchemy.orm import Session, selectinload
+
+from ..auth import require_read
+from ..db.models import Alert, Experiment
+from ..db.notify_models import Outbox
+from ..db.session import get_session
+from ..problems import ProblemError
+from ..schemas.common import problem_responses
+from ..schemas.deliveries import DeliveryAttemptOut, DeliveryList, DeliveryOut
+from ..tokens import Principal
+
+router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
+
+
+@router.get("/{alert_id}/deliveries", response_model=DeliveryList,
+            responses=problem_responses(401, 403, 404))
+def list_deliveries(alert_id: int, session: Session = Depends(get_session),
+                    _: Principal = Depends(require_read)) -> DeliveryList:
+    """Every notification queued for the alert, oldest first, with each delivery attempt."""
+    alert = session.get(Alert, alert_id)
+    if alert is None:
+        raise ProblemError(404, f"There is no alert {alert_id}.")
+    experiment = session.get(Experiment, alert.experiment_id)
+    rows = session.scalars(select(Outbox).where(Outbox.alert_id == alert_id)
+                           .options(selectinload(Outbox.delivery_attempts))
+                           .order_by(Outbox.id))
+    return DeliveryList(
+        alert=alert_id,
+        webhook_configured=bool(experiment is not None and experiment.webhook_url),
+        items=[DeliveryOut(
+            id=row.id, event_id=row.event_id, event_type=row.event_type, status=row.status,
+            attempts=row.attempts, next_attempt_at=row.next_attempt_at,
+            created_at=row.created_at, delivered_at=row.delivered_at,
+            history=[DeliveryAttemptOut(
+                attempt=a.attempt, started_at=a.started_at, duration_ms=a.duration_ms,
+                status_code=a.status_code, error=a.error, response_excerpt=a.response_excerpt)
+                for a in row.delivery_attempts]) for row in rows])
