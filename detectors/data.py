@@ -127,12 +127,24 @@ def metric_columns(columns: Iterable[str]) -> list[str]:
 def records_to_frame(rows: Iterable[Mapping[str, object]]) -> pd.DataFrame:
     """Flatten JSON-style rows (nested ``metrics``) into the flat column layout."""
     flat: list[dict[str, object]] = []
-    for row in rows:
+    problems: list[Problem] = []
+    for index, row in enumerate(rows):
         item = {k: row.get(k) for k in ("date", "arm", "source", "entered")}
-        for name, stats in (row.get("metrics") or {}).items():  # type: ignore[union-attr]
+        metrics = row.get("metrics") or {}
+        if not isinstance(metrics, Mapping):
+            problems.append(Problem("metrics", "must be an object {name: {n, sum, sum_sq}}",
+                                    index))
+            metrics = {}
+        for name, stats in metrics.items():
+            if not isinstance(stats, Mapping):
+                problems.append(Problem(f"metrics.{name}", "must be an object {n, sum, sum_sq}",
+                                        index))
+                continue
             for stat in STAT_FIELDS:
-                item[f"{name}.{stat}"] = (stats or {}).get(stat)
+                item[f"{name}.{stat}"] = stats.get(stat)
         flat.append(item)
+    if problems:
+        raise InputError(problems)
     return pd.DataFrame(flat, columns=None if flat else ["date", "arm", "source", "entered"])
 
 
@@ -168,7 +180,8 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
 
     raw_dates = frame["date"]
     as_text = raw_dates.astype("string").str.strip()
-    dates = pd.to_datetime(as_text, format="%Y-%m-%d", errors="coerce")
+    well_written = as_text.str.fullmatch(r"\d{4}-\d{2}-\d{2}").fillna(False).astype(bool)
+    dates = pd.to_datetime(as_text.where(well_written), format="%Y-%m-%d", errors="coerce")
     flag(dates.isna().to_numpy(), "date", "must be a calendar date written YYYY-MM-DD")
     day = dates.to_numpy().astype("datetime64[D]")
     if start is not None:
@@ -210,10 +223,12 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
              "is larger than entered: a cohort cannot have more measured units than units")
         flag(ok & (n == 0) & ((total != 0) | (total_sq != 0)), name,
              "n is 0 so sum and sum_sq must be 0")
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             floor = np.where(n > 0, total * total / np.where(n > 0, n, 1), 0.0)
-        flag(ok & (n > 0) & (total_sq < floor - _SUMSQ_RTOL * np.maximum(1.0, np.abs(floor))),
-             f"{name}.sum_sq", "is below sum^2/n, which no set of numbers can give")
+        with np.errstate(invalid="ignore"):
+            below = total_sq < floor - _SUMSQ_RTOL * np.maximum(1.0, np.abs(floor))
+        flag(ok & (n > 0) & below, f"{name}.sum_sq",
+             "is below sum^2/n, which no set of numbers can give")
         for stat, column in zip(STAT_FIELDS, stats.T, strict=True):
             clean[f"{name}.{stat}"] = np.where(ok, column, 0.0)
 
@@ -235,5 +250,5 @@ def _numeric(series: pd.Series) -> np.ndarray:
     """Numbers as float; booleans and unparsable text become NaN (and are reported)."""
     if series.dtype == bool:
         return np.full(len(series), np.nan)
-    values = series.map(lambda v: np.nan if isinstance(v, bool) else v)
+    values = series.map(lambda v: np.nan if isinstance(v, bool | np.bool_) else v)
     return pd.to_numeric(values, errors="coerce").to_numpy(dtype=float, na_value=np.nan)

@@ -257,6 +257,9 @@ def diagnose(table: ObservationTable, schedule: AllocationSchedule, *,
         if active.size == 0:
             raise InputError("no units entered on or before as_of", field="as_of")
     table = table.select(day_mask=np.arange(table.n_days) <= active[-1])
+    with_units = [s for i, s in enumerate(table.sources) if table.entered[:, :, i].sum() > 0]
+    if len(with_units) < len(table.sources):  # sources that only appear after as_of
+        table = table.select(sources=with_units)
     arms, sources, dates = table.arms, table.sources, table.dates
     planned = schedule.weights_on(dates)
     counts = table.daily_totals
@@ -322,9 +325,9 @@ def _flagged_days(windows: Sequence[Window], day_p: np.ndarray, counts: np.ndarr
             shares = attribute_excess(excess[day:day + 1], inflow_arm, sources)
             if day_excess[inflow_arm] <= 0 and window.length > 1:
                 continue  # a day of the window that did not add to the inflow arm
+            main = set(_main_sources({s.source: s.excess for s in shares}))
             hits = tuple(c.name for c in campaigns
-                         if c.start <= date <= c.end
-                         and (not shares or c.source in {s.source for s in shares}))
+                         if c.start <= date <= c.end and (not shares or c.source in main))
             inflow = max(day_excess[inflow_arm], 0.0) / (1.0 - planned[day, inflow_arm])
             reasons = [
                 f"{arms[inflow_arm]} received {day_excess[inflow_arm]:+.0f} units against "

@@ -26,6 +26,7 @@ import matplotlib.dates as mdates
 from matplotlib import rc_context
 from matplotlib.axes import Axes
 from matplotlib.backends.backend_svg import FigureCanvasSVG
+from matplotlib.colors import to_rgba
 from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 from matplotlib.ticker import PercentFormatter
@@ -109,21 +110,31 @@ def _mark_flagged(ax: Axes, days: Sequence[Mapping[str, Any]]) -> list[Patch]:
         severity = day.get("severity")
         if not day.get("flagged") or severity not in ("alert", "watch"):
             continue
-        when = dt.date.fromisoformat(day["date"])
+        # A whole day wide, centred on the day's tick (datetimes: a date drops the hours).
+        when = dt.datetime.fromisoformat(day["date"])
         color = BRICK if severity == "alert" else OCHRE
-        ax.axvspan(when - dt.timedelta(hours=12), when + dt.timedelta(hours=12),
-                   facecolor=color, alpha=0.14, edgecolor=color,
+        # Fill and hatching as two layers: the SVG writer fades a hatch with its fill's alpha.
+        start, end = when - dt.timedelta(hours=12), when + dt.timedelta(hours=12)
+        ax.axvspan(start, end, facecolor=to_rgba(color, 0.12), linewidth=0, zorder=0)
+        ax.axvspan(start, end, facecolor="none", edgecolor=to_rgba(color, 0.7),
                    hatch=ALERT_HATCH if severity == "alert" else WATCH_HATCH, linewidth=0,
                    zorder=0)
         seen.add(severity)
     legend = []
     if "alert" in seen:
-        legend.append(Patch(facecolor=BRICK, alpha=0.25, hatch=ALERT_HATCH, edgecolor=BRICK,
-                            label="flagged day (alert)"))
+        legend.append(Patch(facecolor=_tint(BRICK, 0.12), edgecolor=to_rgba(BRICK, 0.7),
+                            hatch=ALERT_HATCH, label="flagged day (alert)"))
     if "watch" in seen:
-        legend.append(Patch(facecolor=OCHRE, alpha=0.25, hatch=WATCH_HATCH, edgecolor=OCHRE,
-                            label="flagged day (watch)"))
+        legend.append(Patch(facecolor=_tint(OCHRE, 0.12), edgecolor=to_rgba(OCHRE, 0.7),
+                            hatch=WATCH_HATCH, label="flagged day (watch)"))
     return legend
+
+
+def _tint(color: str, share: float) -> tuple[float, float, float]:
+    """``color`` mixed into the paper colour, opaque (a legend swatch keeps its hatching)."""
+    top, paper = to_rgba(color), to_rgba(PAPER)
+    r, g, b = (share * t + (1 - share) * p for t, p in zip(top[:3], paper[:3], strict=True))
+    return (r, g, b)
 
 
 def _date_axis(ax: Axes) -> None:
@@ -195,7 +206,7 @@ def entrants_chart(series: Mapping[str, Any]) -> str:
                 ax.plot(dates, source["entered"][arm], color=look.color,
                         linestyle=look.linestyle, marker=look.marker, markersize=3.5,
                         linewidth=1.4, label=source["source"])
-            ax.text(0.995, 0.97, f"arm {arm}", transform=ax.transAxes, ha="right", va="top",
+            ax.text(0.005, 0.97, f"arm {arm}", transform=ax.transAxes, ha="left", va="top",
                     fontsize=9.5, fontweight="bold",
                     bbox={"facecolor": PAPER, "edgecolor": SLATE, "boxstyle": "round,pad=0.3"})
             ax.set_ylabel("Units entered")

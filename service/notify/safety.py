@@ -47,7 +47,7 @@ def forbidden_reason(address: IPAddress) -> str | None:
         return forbidden_reason(address.ipv4_mapped)
     checks = (("unspecified", address.is_unspecified), ("loopback", address.is_loopback),
               ("link-local", address.is_link_local), ("multicast", address.is_multicast),
-              ("private", address.is_private), ("reserved", address.is_reserved))
+              ("reserved", address.is_reserved), ("private", address.is_private))
     for name, hit in checks:
         if hit:
             return name

@@ -5,6 +5,7 @@ Nothing here touches the database, so every page can be rendered and checked in 
 
 from __future__ import annotations
 
+import datetime as dt
 from collections.abc import Mapping, Sequence
 from functools import cache
 from typing import Any
@@ -37,6 +38,7 @@ def environment() -> Environment:
     env.filters["signed"] = format_signed
     env.filters["pct"] = format_pct
     env.filters["num"] = format_num
+    env.filters["when"] = format_when
     return env
 
 
@@ -59,6 +61,19 @@ def format_pct(value: Any, digits: int = 0) -> str:
 
 def format_num(value: Any, digits: int = 0) -> str:
     return "n/a" if value is None else f"{float(value):,.{digits}f}"
+
+
+def format_when(value: Any) -> str:
+    """``2026-11-10T08:00:00+00:00`` -> ``2026-11-10 08:00 UTC``."""
+    if not value:
+        return "–"
+    try:
+        moment = dt.datetime.fromisoformat(str(value))
+    except ValueError:
+        return str(value)
+    if moment.tzinfo is not None:
+        moment = moment.astimezone(dt.UTC)
+    return moment.strftime("%Y-%m-%d %H:%M") + (" UTC" if moment.tzinfo else "")
 
 
 def status_view(status: str | None) -> dict[str, str]:
@@ -106,7 +121,7 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
     if reweight and reweight.get("comparisons"):
         chart_svgs["effect"] = Markup(charts.effect_chart(reweight))
     caveats = list(reweight.get("caveats", [])) if reweight else []
-    if reweight and REWEIGHT_CAVEAT not in caveats:
+    if reweight and not any("different question" in c for c in caveats):
         caveats.append(REWEIGHT_CAVEAT)
     return environment().get_template("experiment.html").render(
         experiment=experiment, diagnosis=diagnosis, series=series, alerts=list(alerts),

@@ -272,6 +272,18 @@ def test_sequential_p_value_is_one_over_running_max_bayes_factor_across_a_ramp()
     assert result.final_p_value == result.p_value[-1]
 
 
+def test_sequential_p_value_never_rises_when_evidence_fades() -> None:
+    # An early tilt followed by weeks on plan: the Bayes factor rises, then decays. The
+    # anytime-valid p-value is 1 / running max (Ville's inequality), so it must keep the low.
+    counts = np.array([[4700, 5300]] * 3 + [[5000, 5000]] * 40)
+    result = sequential_srm(counts, np.full(counts.shape, 0.5))
+    peak = int(np.argmax(result.log_bayes_factor))
+    assert result.log_bayes_factor[peak] > 0
+    assert result.log_bayes_factor[-1] < result.log_bayes_factor[peak] - 1.0
+    assert np.all(np.diff(result.p_value) <= 0)
+    assert result.final_p_value == pytest.approx(np.exp(-result.log_bayes_factor[peak]))
+
+
 def _simulate_daily(rng: np.random.Generator, reps: int, days: int, planned: np.ndarray,
                     true_share: np.ndarray | None = None, mean_units: float = 2000.0
                     ) -> np.ndarray:

@@ -69,8 +69,6 @@ def test_invalid_or_badly_written_date(value: Any) -> None:
     assert _problems(_with(1, "date", value)) == [(1, "date")]
 
 
-@pytest.mark.xfail(strict=True, reason="detectors.data accepts dates without zero padding "
-                   "(pandas parses '2026-3-2' with format %Y-%m-%d); the contract is YYYY-MM-DD")
 def test_date_without_zero_padding_is_refused() -> None:
     assert _problems(_with(1, "date", "2026-3-2")) == [(1, "date")]
 

@@ -1,0 +1,165 @@
+"""``GET /experiments`` and ``GET /experiments/{id}``: the status pages.
+
+A read token is taken from ``Authorization: Bearer``, from the ``inrush_token`` cookie, or
+once from ``?token=``: that answer sets the cookie (HttpOnly, SameSite=Strict, Secure over
+https) and redirects to the same page without the token in the address.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Annotated, Any
+from urllib.parse import urlencode
+
+from fastapi import APIRouter, Depends, Query, Request
+from fastapi.responses import HTMLResponse, RedirectResponse, Response
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from detectors import InputError, reweight
+from detectors.errors import UndefinedEstimateError
+
+from ..analysis import latest_snapshot, latest_summaries, load_table
+from ..db.models import Alert, Experiment
+from ..db.session import get_session
+from ..http import json_safe
+from ..routers.alerts import alert_out
+from ..routers.common import base_url
+from ..routers.reweight import flagged_dates
+from ..settings import Settings
+from ..tokens import Principal, Scope, authenticate
+from .render import render_experiment_page, render_index_page, render_token_page
+
+COOKIE = "inrush_token"
+COOKIE_PATH = "/experiments"
+UNRESOLVED = ("open", "acknowledged")
+PAGE_HEADERS = {"Cache-Control": "private, no-store", "X-Content-Type-Options": "nosniff",
+                "Referrer-Policy": "no-referrer",
+                "Content-Security-Policy": "default-src 'none'; style-src 'unsafe-inline'; "
+                                           "img-src data:; form-action 'self'; "
+                                           "frame-ancestors 'none'"}
+
+router = APIRouter(tags=["pages"], include_in_schema=False)
+
+
+def _bearer(request: Request) -> str | None:
+    scheme, _, value = request.headers.get("authorization", "").partition(" ")
+    return (value.strip() or None) if scheme.lower() == "bearer" else None
+
+
+def _principal(request: Request, session: Session, token: str | None) -> Principal | None:
+    if not token:
+        return None
+    settings: Settings = request.app.state.settings
+    admin = settings.admin_token.get_secret_value() if settings.admin_token else None
+    principal = authenticate(session, token, admin)
+    return principal if principal is not None and principal.scope >= Scope.read else None
+
+
+def _without_token(request: Request) -> str:
+    query = [(k, v) for k, v in request.query_params.multi_items() if k != "token"]
+    return request.url.path + (f"?{urlencode(query)}" if query else "")
+
+
+def _gate(request: Request, session: Session, token: str | None) -> Response | None:
+    """``None`` when the reader may see the page; else the answer to send instead."""
+    if token is not None:  # ?token= : check it, keep it in a cookie, drop it from the URL
+        if _principal(request, session, token) is None:
+            return _ask(request, "That token is unknown, revoked or lacks read scope.")
+        response = RedirectResponse(_without_token(request), status_code=303,
+                                    headers={"Cache-Control": "no-store"})
+        response.set_cookie(COOKIE, token, httponly=True, samesite="strict", path=COOKIE_PATH,
+                            secure=request.url.scheme == "https")
+        return response
+    for candidate in (_bearer(request), request.cookies.get(COOKIE)):
+        if candidate and _principal(request, session, candidate) is not None:
+            return None
+    if request.cookies.get(COOKIE):
+        response = _ask(request, "The saved token is no longer accepted.")
+        response.delete_cookie(COOKIE, path=COOKIE_PATH)
+        return response
+    return _ask(request, "This page shows experiment data; open it with a token that has read "
+                         "scope.")
+
+
+def _ask(request: Request, reason: str) -> HTMLResponse:
+    return HTMLResponse(render_token_page(reason=reason, next_path=request.url.path),
+                        status_code=401, headers={**PAGE_HEADERS,
+                                                  "WWW-Authenticate": 'Bearer realm="inrush"'})
+
+
+TokenQuery = Annotated[str | None, Query(description="read token, once; kept in a cookie")]
+
+
+@router.get("/experiments", response_class=HTMLResponse)
+def index_page(request: Request, session: Session = Depends(get_session),
+               token: TokenQuery = None) -> Response:
+    blocked = _gate(request, session, token)
+    if blocked is not None:
+        return blocked
+    experiments = list(session.scalars(select(Experiment).order_by(Experiment.id)))
+    summaries = latest_summaries(session, [e.id for e in experiments])
+    counts = dict(session.execute(
+        select(Alert.experiment_id, func.count()).where(Alert.status.in_(UNRESOLVED))
+        .group_by(Alert.experiment_id)).tuples())
+    rows = []
+    for experiment in experiments:
+        summary = summaries.get(experiment.id)
+        rows.append({"id": experiment.id, "title": experiment.title,
+                     "start_date": experiment.start_date.isoformat(),
+                     "status": summary.status if summary else "no_data",
+                     "as_of": summary.as_of.isoformat() if summary and summary.as_of else None,
+                     "open_alerts": counts.get(experiment.id, 0)})
+    return HTMLResponse(render_index_page(rows), headers=PAGE_HEADERS)
+
+
+@router.get("/experiments/{experiment_id}", response_class=HTMLResponse)
+def experiment_page(experiment_id: str, request: Request,
+                    session: Session = Depends(get_session),
+                    token: TokenQuery = None) -> Response:
+    blocked = _gate(request, session, token)
+    if blocked is not None:
+        return blocked
+    experiment = session.get(Experiment, experiment_id)
+    if experiment is None:
+        return HTMLResponse(render_index_page([]).replace(
+            "No experiments yet.", f"There is no experiment {experiment_id!r}."),
+            status_code=404, headers=PAGE_HEADERS)
+    snapshot = latest_snapshot(session, experiment_id)
+    document = snapshot.document if snapshot else None
+    series = snapshot.series if snapshot else None
+    alerts = session.scalars(select(Alert).where(Alert.experiment_id == experiment_id,
+                                                 Alert.status.in_(UNRESOLVED))
+                             .order_by(Alert.id.desc()))
+    alert_rows = [alert_out(request, a).model_dump(mode="json") for a in alerts]
+    effect, problem = _effect(session, experiment, document, series)
+    base = base_url(request)
+    links = {"diagnosis (JSON)": f"{base}/v1/experiments/{experiment_id}/diagnosis",
+             "daily series (JSON)": f"{base}/v1/experiments/{experiment_id}/series",
+             "alerts (JSON)": f"{base}/v1/alerts?experiment={experiment_id}"}
+    html = render_experiment_page(
+        experiment={"id": experiment.id, "title": experiment.title, "arms": experiment.arms,
+                    "start_date": experiment.start_date.isoformat()},
+        diagnosis=document, series=series, alerts=alert_rows, reweight=effect,
+        reweight_problem=problem, diagnosis_version=snapshot.version if snapshot else None,
+        links=links)
+    return HTMLResponse(html, headers=PAGE_HEADERS)
+
+
+def _effect(session: Session, experiment: Experiment, document: dict[str, Any] | None,
+            series: dict[str, Any] | None) -> tuple[dict[str, Any] | None, str | None]:
+    """The effect on the first metric, re-weighted by source x flagged window to the
+    reference arm's mix; or why there is none."""
+    metrics = list((series or {}).get("metrics", []))
+    if document is None or not metrics:
+        return None, "No metric has been uploaded, so there is no effect to estimate."
+    table = load_table(session, experiment)
+    if table is None:
+        return None, "No observations are stored."
+    flagged: list[dt.date] = flagged_dates(document)
+    try:
+        result = reweight(table, metrics[0], target="reference_arm", by=("source", "window"),
+                          flagged_dates=flagged)
+    except (UndefinedEstimateError, InputError) as error:
+        return None, f"The re-weighted estimate is undefined: {error}"
+    return json_safe(result.to_dict()), None
