@@ -27,7 +27,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
         "demo", help="run the invented demo scenario against a local server",
         description="Start Inrush on SQLite, upload the demo experiment day by day and print "
                     "what its owner would see.")
-    demo.add_argument("--port", type=int, default=0, help="port (default: a free one)")
+    demo.add_argument("--port", type=int, default=8000,
+                      help="port (default 8000, or a free one when 8000 is taken)")
     demo.add_argument("--database", type=Path, default=Path("inrush-demo.db"),
                       help="SQLite file for the demo (recreated each run)")
     demo.add_argument("--no-serve", action="store_true", help="exit after the printout")
@@ -56,14 +57,20 @@ def _offline() -> int:
                  "--by", "source,window"])
 
 
-def _free_port() -> int:
-    with contextlib.closing(socket.socket(socket.AF_INET, socket.SOCK_STREAM)) as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
+def _port(wanted: int) -> int:
+    """``wanted`` when it can be bound on loopback, else a free port."""
+    for candidate in (wanted, 0):
+        with contextlib.closing(socket.socket(socket.AF_INET, socket.SOCK_STREAM)) as sock:
+            try:
+                sock.bind(("127.0.0.1", candidate))
+            except OSError:
+                continue
+            return int(sock.getsockname()[1])
+    raise OSError("no free port on 127.0.0.1")
 
 
 def _online(args: argparse.Namespace) -> int:
-    port = args.port or _free_port()
+    port = _port(args.port)
     base = f"http://127.0.0.1:{port}"
     for suffix in ("", "-wal", "-shm"):
         Path(f"{args.database}{suffix}").unlink(missing_ok=True)
@@ -72,7 +79,7 @@ def _online(args: argparse.Namespace) -> int:
            "INRUSH_ADMIN_TOKEN": token, "INRUSH_PUBLIC_URL": base}
     server = subprocess.Popen(
         [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1",
-         "--port", str(port)], env=env)
+         "--port", str(port), "--log-level", "warning"], env=env)
     try:
         client = httpx.Client(base_url=base, timeout=30.0,
                               headers={"Authorization": f"Bearer {token}"})
@@ -146,9 +153,11 @@ def _show(client: httpx.Client, base: str, token: str) -> None:
     diagnosis = _check(client.get(f"/v1/experiments/{experiment}/diagnosis"))
     print(format_diagnosis(diagnosis))
     alerts = _check(client.get("/v1/alerts", params={"experiment": experiment}))
-    print(f"\nOpen alerts: {len(alerts.get('items', []))}")
-    for alert in alerts.get("items", [])[:10]:
-        print(f"  [{alert['kind']}] {alert['title']}")
+    items = alerts.get("items", [])
+    open_items = [a for a in items if a["status"] == "open"]
+    print(f"\nAlert history: {len(items)} alerts, {len(open_items)} open")
+    for alert in items[:12]:
+        print(f"  {alert['status']:<12} [{alert['kind']}] {alert['title']}")
     reweighting = _check(client.post(f"/v1/experiments/{experiment}/reweight", json={
         "metric": "routes_saved", "target": "reference_arm", "by": ["source", "window"]}))
     print()

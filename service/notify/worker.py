@@ -23,11 +23,11 @@ import random
 import socket
 import threading
 import uuid
-from collections.abc import Callable
+from collections.abc import Callable, Collection
 from dataclasses import dataclass
 
 import httpx
-from sqlalchemy import ColumnElement, and_, or_, select, update
+from sqlalchemy import ColumnElement, Select, and_, or_, select, update
 from sqlalchemy.orm import Session
 
 from ..db.models import Experiment, utcnow
@@ -82,29 +82,33 @@ class NotifyWorker:
 
     # -- claiming ---------------------------------------------------------------------------
 
-    def claim_next(self) -> Claim | None:
-        """Lease the next due row, or ``None`` when nothing is due."""
+    def claim_next(self, skip: Collection[int] = ()) -> Claim | None:
+        """Lease the next due row (not one of ``skip``), or ``None`` when nothing is due."""
         with self.database.sessions() as session:
             if self.database.dialect == "postgresql":
-                return self._claim_skip_locked(session)
-            return self._claim_compare_and_set(session)
+                return self._claim_skip_locked(session, skip)
+            return self._claim_compare_and_set(session, skip)
 
-    def _claim_skip_locked(self, session: Session) -> Claim | None:
+    @staticmethod
+    def _candidates(now: dt.datetime, skip: Collection[int]) -> Select[tuple[int, str, int]]:
+        query = select(Outbox.id, Outbox.status, Outbox.attempts).where(due(now))
+        if skip:
+            query = query.where(Outbox.id.not_in(list(skip)))
+        return query.order_by(Outbox.next_attempt_at, Outbox.id)
+
+    def _claim_skip_locked(self, session: Session, skip: Collection[int]) -> Claim | None:
         now = self.clock()
         with session.begin():
             row = session.execute(
-                select(Outbox.id, Outbox.status, Outbox.attempts).where(due(now))
-                .order_by(Outbox.next_attempt_at, Outbox.id).limit(1)
-                .with_for_update(skip_locked=True)).first()
+                self._candidates(now, skip)
+.limit(1).with_for_update(skip_locked=True)).first()
             if row is None:
                 return None
             return self._lease(session, row.id, row.status, row.attempts, now, None)
 
-    def _claim_compare_and_set(self, session: Session) -> Claim | None:
+    def _claim_compare_and_set(self, session: Session, skip: Collection[int]) -> Claim | None:
         now = self.clock()
-        candidates = session.execute(
-            select(Outbox.id, Outbox.status, Outbox.attempts).where(due(now))
-            .order_by(Outbox.next_attempt_at, Outbox.id).limit(5)).all()
+        candidates = session.execute(self._candidates(now, skip).limit(5)).all()
         session.rollback()
         for row in candidates:
             begin_write(session)
@@ -190,15 +194,16 @@ class NotifyWorker:
                         claim.attempt, outcome.error)
 
     def run_once(self, limit: int = 100) -> int:
-        """Deliver due rows until none is left (at most ``limit``); the number attempted."""
-        done = 0
-        while done < limit and not self._stop.is_set():
-            claim = self.claim_next()
+        """Deliver due rows until none is left (at most ``limit``), each at most once per
+        pass (a retry due at once waits for the next pass); the number attempted."""
+        attempted: set[int] = set()
+        while len(attempted) < limit and not self._stop.is_set():
+            claim = self.claim_next(skip=attempted)
             if claim is None:
                 break
+            attempted.add(claim.outbox_id)
             self.deliver_claim(claim)
-            done += 1
-        return done
+        return len(attempted)
 
     # -- background thread ------------------------------------------------------------------
 

@@ -37,7 +37,7 @@ def running_receiver(planned: list[int] | None = None, default: int = 200
     receiver: Receiver
 
     class Handler(BaseHTTPRequestHandler):
-        def do_POST(self) -> None:  # noqa: N802 - http.server's naming
+        def do_POST(self) -> None:
             body = self.rfile.read(int(self.headers.get("content-length", "0")))
             with receiver.lock:
                 receiver.requests.append(Received(self.path, {k.lower(): v for k, v in

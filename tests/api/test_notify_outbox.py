@@ -70,7 +70,8 @@ def seed(database: Database, webhook_url: str | None, secret: str | None = SECRE
                                           "sum_sq": float(record["routes_saved.sum_sq"])}}))
         session.flush()
         refresh = refresh_diagnosis(session, experiment)
-        queued = enqueue_for_changes(session, experiment, refresh.alerts)
+        queued = enqueue_for_changes(session, experiment, refresh.alerts,
+                                     public_url="https://inrush.larkspur.example")
         if commit:
             session.commit()
         else:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import itertools
 import random
 
 import pytest
@@ -13,7 +14,7 @@ from service.notify import backoff
 def test_nominal_schedule_grows_over_hours() -> None:
     delays = [backoff.nominal_delay(n) for n in range(1, backoff.MAX_ATTEMPTS + 1)]
     assert delays[0] == 0
-    assert all(b > a for a, b in zip(delays, delays[1:], strict=False))
+    assert all(b > a for a, b in itertools.pairwise(delays))
     assert delays[-1] >= 8 * 3600
     assert sum(delays) > 12 * 3600  # retries span more than half a day
 

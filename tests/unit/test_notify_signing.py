@@ -42,7 +42,7 @@ def test_published_example_of_the_specification() -> None:
 def test_own_vector_and_independent_computation() -> None:
     assert signing.sign(OWN_SECRET, OWN_ID, OWN_TIMESTAMP, OWN_BODY) == OWN_SIGNATURE
     assert independent_signature(OWN_SECRET, OWN_ID, OWN_TIMESTAMP, OWN_BODY) == OWN_SIGNATURE
-    body = '{"experiment":"route-cards","arm":"cards","excess":897.5}'.encode()
+    body = b'{"experiment":"route-cards","arm":"cards","excess":897.5}'
     assert (signing.sign(OWN_SECRET, "evt", 1, body)
             == independent_signature(OWN_SECRET, "evt", 1, body))
 
