@@ -253,9 +253,23 @@ def write_markdown(results: dict[str, Any], path: Path) -> None:
             lines.append(f"| {name} | {_fmt(x.get('ci_coverage'))} | "
                          f"{_fmt(x.get('abs_bias_over_se'))} | {_fmt(x.get('mean_bias'))} | "
                          f"{_fmt(x.get('mean_se'))} |")
-        for key in ("runs", "errors", "coverage_wilson95", "note"):
-            if key in rw:
-                lines.append(f"\n{key}: {_fmt(rw[key])}")
+        lines.append("")
+        lines.append(f"Repetitions {rw.get('runs')}, failed {rw.get('errors')}; adjusted coverage "
+                     f"95% interval {_fmt(rw.get('adjusted', {}).get('coverage_wilson95'))}.")
+        un = rw.get("unlabeled_inflow", {})
+        if un.get("adjusted"):
+            lines += ["", "Caution, same experiments with the inflow unlabelled (mixed into "
+                      "organic, so no cohort captures it): adjusted coverage "
+                      f"{_fmt(un['adjusted']['ci_coverage'])}, bias/SE "
+                      f"{_fmt(un['adjusted']['abs_bias_over_se'])}; naive coverage "
+                      f"{_fmt(un['naive']['ci_coverage'])}, bias/SE "
+                      f"{_fmt(un['naive']['abs_bias_over_se'])} ({un['runs']} runs)."]
+        up = rw.get("unlabeled_inflow_pooled_unflagged", {})
+        if up.get("adjusted"):
+            lines += ["", "Unlabelled inflow with target pooled_unflagged (flagged-day cohorts "
+                      f"get no weight): adjusted coverage {_fmt(up['adjusted']['ci_coverage'])}, "
+                      f"bias/SE {_fmt(up['adjusted']['abs_bias_over_se'])} ({up['runs']} runs, "
+                      "truth from the target weights the method reports)."]
     sp = details.get("speed", {})
     if sp:
         lines += ["", "## Speed", "", f"Workload {_fmt(sp['workload'])}.",

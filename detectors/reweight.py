@@ -1,19 +1,49 @@
 """Re-weighting an effect estimate by entry cohort (post-stratification).
 
-Miratrix, Sekhon & Yu, "Adjusting treatment effect estimates by post-stratification in
-randomized experiments", JRSS-B 75:369-396 (2013): each arm's mean is re-built as
-``sum_c pi_c * mean_{arm,c}`` over cohorts ``c`` with a common target mix ``pi``, so an arm that
-received an extra cohort (a campaign's dormant users) is compared on the same mix as the other.
-Variances are Welch-type (unequal per arm and cohort, Welch 1947) from the n/sum/sum_sq
-sufficient statistics with the target weights held fixed; the relative lift uses the delta
-method. The naive gap is split into a composition part and a within-cohort part (Kitagawa 1955,
-"Components of a difference between two rates", JASA 50:1168-1194; the same split as
-Oaxaca-Blinder), which add up exactly.
+When an inflow outside the randomisation (a campaign sent to one arm) puts a different population
+into one arm, the plain difference of arm means mixes the treatment effect with the difference in
+who entered. Post-stratification compares the arms on one common cohort mix instead.
+
+Methods:
+
+* Post-stratification: Miratrix, Sekhon & Yu, "Adjusting treatment effect estimates by
+  post-stratification in randomized experiments", JRSS-B 75(2):369-396 (2013). Each arm's mean
+  is rebuilt as ``sum_c pi_c * m_{a,c}`` over cohorts ``c`` with one target mix ``pi`` shared by
+  every arm.
+* Variance: Welch-type, unequal per arm and cohort (Welch, "The generalization of Student's
+  problem when several different population variances are involved", Biometrika 34:28-35,
+  1947), ``sum_c pi_c^2 s^2_{a,c} / n_{a,c}`` from the ``n, sum, sum_sq`` sufficient statistics,
+  with the target weights held fixed (the extra variance of a mix estimated from the data is not
+  counted; Miratrix et al. give it, and it is small when cohorts are large).
+* Relative lift ``d / m_r``: the delta method,
+  ``Var ~ Var(m_a) / m_r^2 + m_a^2 Var(m_r) / m_r^4`` (arms independent).
+* Decomposition of the naive gap into a composition part and a within-cohort part: Kitagawa,
+  "Components of a difference between two rates", JASA 50:1168-1194 (1955), the same split as
+  the Oaxaca-Blinder decomposition with averaged weights. The two parts add up exactly.
+
+Example (Larkspur Trails demo scenario: a push campaign reached only ``cards``):
+
+    >>> import pandas as pd
+    >>> rows = pd.DataFrame({"date": ["2026-03-01"] * 4,
+    ...     "arm": ["control", "control", "cards", "cards"],
+    ...     "source": ["organic", "push", "organic", "push"], "entered": [900, 100, 900, 500],
+    ...     "routes_saved.n": [900, 100, 900, 500],
+    ...     "routes_saved.sum": [1800.0, 50, 1980, 275],
+    ...     "routes_saved.sum_sq": [4500.0, 40, 5000, 230]})
+    >>> table = ObservationTable.from_frame(rows, ["control", "cards"])
+    >>> result = reweight(table, "routes_saved")
+    >>> cards = result.comparisons[0]
+    >>> round(cards.naive.difference, 3), round(cards.adjusted.difference, 3)
+    (-0.239, 0.185)
+    >>> parts = cards.decomposition
+    >>> round(parts.composition, 3), round(parts.within, 3)
+    (-0.405, 0.166)
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -25,13 +55,17 @@ from .data import ObservationTable
 from .errors import InputError, Problem, UndefinedEstimateError
 
 TARGETS = ("reference_arm", "pooled_unflagged", "custom")
+GROUPINGS = (("source",), ("source", "window"))
+WINDOWS = ("unflagged", "flagged")
+# Cohorts smaller than this in some arm get a caveat: their variance estimate is rough
+# (common practice, no source).
 SMALL_COHORT = 30
 
-_CAVEAT_QUESTION = (
+CAVEAT_QUESTION = (
     "The re-weighted estimate answers a different question: the effect on the population the "
     "target mix describes. It rests on the cohorts capturing why the inflow differs, and it is "
     "not a randomised estimate.")
-_CAVEAT_DESIGN = (
+CAVEAT_DESIGN = (
     "When an inflow came from a campaign sent to one arm, the clean remedy is design: send it to "
     "an equal share of every arm, or log who would have received it in every arm and analyse by "
     "intent to treat.")
@@ -39,7 +73,10 @@ _CAVEAT_DESIGN = (
 
 @dataclass(frozen=True, slots=True)
 class Estimate:
-    """Arm vs reference mean, their difference and relative lift with confidence intervals."""
+    """An arm's mean against the reference arm's: difference and relative lift with intervals.
+
+    ``relative`` and its interval are ``None`` when the reference mean is 0.
+    """
 
     reference_mean: float
     arm_mean: float
@@ -51,24 +88,48 @@ class Estimate:
     relative_ci_high: float | None
 
     def to_dict(self) -> dict[str, float | None]:
-        return {k: _json(getattr(self, k)) for k in self.__slots__}
+        return {name: _json(getattr(self, name)) for name in self.__slots__}
+
+
+@dataclass(frozen=True, slots=True)
+class Decomposition:
+    """Naive difference = ``composition`` (cohort mix) + ``within`` (within-cohort gaps)."""
+
+    composition: float
+    within: float
+
+    def to_dict(self) -> dict[str, float | None]:
+        return {"composition": _json(self.composition), "within": _json(self.within)}
 
 
 @dataclass(frozen=True, slots=True)
 class Comparison:
+    """One non-reference arm against the reference arm."""
+
     arm: str
     naive: Estimate
     adjusted: Estimate
-    composition: float
-    within: float
+    decomposition: Decomposition
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"arm": self.arm, "naive": self.naive.to_dict(),
+                "adjusted": self.adjusted.to_dict(),
+                "decomposition": self.decomposition.to_dict()}
 
 
 @dataclass(frozen=True, slots=True)
 class Cohort:
+    """A cohort's target weight and, per arm, its measured units and mean (``None`` if none)."""
+
     name: str
     weight: float
-    n: dict[str, int]
-    mean: dict[str, float | None]
+    n: Mapping[str, int]
+    mean: Mapping[str, float | None]
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"cohort": self.name, "weight": _json(self.weight),
+                "arms": {arm: {"n": self.n[arm], "mean": _json(self.mean[arm])}
+                         for arm in self.n}}
 
 
 @dataclass(frozen=True, slots=True)
@@ -83,214 +144,333 @@ class Reweighting:
     caveats: tuple[str, ...]
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "metric": self.metric,
-            "target": self.target,
-            "by": list(self.by),
-            "comparisons": [{
-                "arm": c.arm, "naive": c.naive.to_dict(), "adjusted": c.adjusted.to_dict(),
-                "decomposition": {"composition": _json(c.composition), "within": _json(c.within)},
-            } for c in self.comparisons],
-            "cohorts": [{"cohort": c.name, "weight": _json(c.weight),
-                         "arms": {a: {"n": c.n[a], "mean": _json(c.mean[a])} for a in c.n}}
-                        for c in self.cohorts],
-            "caveats": list(self.caveats),
-        }
+        """The re-weighting answer of the HTTP contract; floats are finite or ``None``."""
+        return {"metric": self.metric, "target": self.target, "by": list(self.by),
+                "comparisons": [c.to_dict() for c in self.comparisons],
+                "cohorts": [c.to_dict() for c in self.cohorts],
+                "caveats": list(self.caveats)}
+
+
+@dataclass(frozen=True, slots=True)
+class _Cells:
+    """Sufficient statistics per arm and cohort, each ``(arms, cohorts)``."""
+
+    names: tuple[str, ...]
+    n: np.ndarray
+    total: np.ndarray
+    total_sq: np.ndarray
 
 
 def reweight(table: ObservationTable, metric: str, *, target: str = "reference_arm",
              weights: Mapping[str, float] | None = None, by: Sequence[str] = ("source",),
              exclude_sources: Sequence[str] = (), exclude_dates: Sequence[dt.date] = (),
              flagged_dates: Sequence[dt.date] = (), confidence: float = 0.95) -> Reweighting:
-    """Post-stratified effect of each arm against the reference arm (the table's first arm).
+    """Naive and post-stratified effect of each arm against the reference arm (the first arm).
 
-    Cohorts are entry sources (``by=("source",)``) or sources split into flagged and unflagged
-    days (``by=("source", "window")``, cohort names ``"SOURCE|flagged"``). ``target`` picks the
-    cohort mix: the reference arm's, all arms pooled over unflagged days, or ``custom`` weights.
+    Args:
+        table: the experiment's observations; ``metric`` must be one of its metrics.
+        target: the cohort mix every arm is re-weighted to: ``reference_arm`` (the reference
+            arm's share of measured units per cohort), ``pooled_unflagged`` (all arms pooled
+            over the days not in ``flagged_dates``; every day when none is flagged) or
+            ``custom`` (``weights``, normalised to sum to 1).
+        weights: ``{cohort: weight >= 0}`` for ``target="custom"``; unnamed cohorts weigh 0.
+        by: ``("source",)`` (cohort = entry source) or ``("source", "window")`` (cohort =
+            ``"SOURCE|flagged"`` or ``"SOURCE|unflagged"`` by whether the day is flagged).
+        exclude_sources, exclude_dates: removed before anything else.
+        flagged_dates: the inflow window (the diagnosis's alert days).
+        confidence: level of the normal intervals.
+
+    Raises:
+        InputError: naming the field (``metric``, ``target``, ``weights``, ``by``,
+            ``exclude_sources``, ``exclude_dates``, ``flagged_dates``, ``confidence``).
+        UndefinedEstimateError: a cohort with positive target weight has no measured units in
+            some arm.
+
+    A cohort absent from one arm of a comparison enters the decomposition with the other arm's
+    mean: its within part is 0 and the composition part carries its whole contribution.
+    """
+    by = _check_request(table, metric, target, weights, by, confidence)
+    keep_day, keep_source = _exclusions(table, exclude_sources, exclude_dates)
+    flagged = _day_mask(table, flagged_dates, "flagged_dates")[keep_day]
+    cube = table.metrics[metric][keep_day][:, :, keep_source]         # (days, arms, sources, 3)
+    sources = tuple(s for s, keep in zip(table.sources, keep_source, strict=True) if keep)
+    cells = _cohort_cells(cube, flagged, sources, by)
+    present = cells.n.sum(axis=0) > 0
+    if not present.any():
+        raise InputError([Problem("metric", f"no measured units of {metric!r} remain after the "
+                                  "exclusions")])
+    cells = _Cells(tuple(name for name, p in zip(cells.names, present, strict=True) if p),
+                   cells.n[:, present], cells.total[:, present], cells.total_sq[:, present])
+    arms = table.arms
+    arm_n = cells.n.sum(axis=1)
+    if (arm_n == 0).any():
+        empty = [arm for arm, k in zip(arms, arm_n, strict=True) if k == 0]
+        raise InputError([Problem("metric", f"arm(s) {empty} have no measured units of "
+                                  f"{metric!r}; there is nothing to compare")])
+
+    caveats = [CAVEAT_QUESTION, CAVEAT_DESIGN]
+    if target == "reference_arm":
+        pi = cells.n[0] / cells.n[0].sum()
+    elif target == "pooled_unflagged":
+        if not flagged.any():
+            caveats.append("No included day is flagged, so the pooled mix covers every "
+                           "included day.")
+        pooled = _cohort_cells(cube[~flagged], flagged[~flagged], sources, by)
+        mix = pooled.n.sum(axis=0)[present]
+        if mix.sum() <= 0:
+            raise InputError([Problem("target", "pooled_unflagged needs measured units on "
+                                      "unflagged days, and every included day is flagged")])
+        pi = mix / mix.sum()
+    else:
+        pi = _custom_weights(weights or {}, cells.names, _cohort_names(table.sources, by))
+    _require_defined(pi, cells, arms, target)
+
+    with np.errstate(divide="ignore", invalid="ignore"):
+        means = np.where(cells.n > 0, cells.total / cells.n, np.nan)     # (arms, cohorts)
+    variance_of_mean = np.where(cells.n > 0, _unit_variance(cells.n, cells.total,
+                                                            cells.total_sq)
+                                / np.maximum(cells.n, 1), 0.0)
+    z = float(stats.norm.ppf(0.5 + confidence / 2))
+
+    naive_mean = cells.total.sum(axis=1) / arm_n
+    naive_var = _unit_variance(arm_n, cells.total.sum(axis=1), cells.total_sq.sum(axis=1)) / arm_n
+    adjusted_mean = (pi * np.nan_to_num(means)).sum(axis=1)
+    adjusted_var = (pi**2 * variance_of_mean).sum(axis=1)
+    naive = _estimates(naive_mean, naive_var, z)
+    adjusted = _estimates(adjusted_mean, adjusted_var, z)
+    composition, within = kitagawa(cells.n, means)
+
+    comparisons = tuple(Comparison(arms[a], naive[a - 1], adjusted[a - 1],
+                                   Decomposition(float(composition[a - 1]),
+                                                 float(within[a - 1])))
+                        for a in range(1, len(arms)))
+    caveats += _caveats(comparisons, pi, cells, confidence)
+    cohorts = tuple(Cohort(name, float(pi[c]),
+                           {arm: int(cells.n[a, c]) for a, arm in enumerate(arms)},
+                           {arm: _json(means[a, c]) for a, arm in enumerate(arms)})
+                    for c, name in enumerate(cells.names))
+    return Reweighting(metric, target, by, comparisons, cohorts, tuple(caveats))
+
+
+def kitagawa(n: np.ndarray, means: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Composition and within-cohort parts of each arm's naive gap to arm 0 (Kitagawa 1955).
+
+    ``n`` and ``means`` are ``(arms, cohorts)``; ``means`` is NaN where ``n`` is 0. With
+    ``p`` the cohort shares of an arm's measured units, for arm ``a`` against reference ``r``:
+    ``composition = sum_c (p_a - p_r)(m_a + m_r)/2`` and
+    ``within = sum_c (m_a - m_r)(p_a + p_r)/2``, which add up to
+    ``sum_c p_a m_a - sum_c p_r m_r``, the naive difference. A cohort missing from one of the two
+    arms takes the other arm's mean, so its within part is 0.
 
     Example:
-        >>> import pandas as pd
-        >>> rows = pd.DataFrame({"date": ["2026-03-01"] * 4, "arm": ["a", "a", "b", "b"],
-        ...     "source": ["organic", "email", "organic", "email"], "entered": [900, 100, 900, 500],
-        ...     "m.n": [900, 100, 900, 500], "m.sum": [1800.0, 50, 1980, 275],
-        ...     "m.sum_sq": [4500.0, 40, 5000, 230]})
-        >>> r = reweight(ObservationTable.from_frame(rows, ["a", "b"]), "m")
-        >>> c = r.comparisons[0]
-        >>> round(c.naive.difference, 3), round(c.adjusted.difference, 3)
-        (-0.239, 0.185)
+        >>> comp, within = kitagawa(np.array([[50, 50], [20, 80]]),
+        ...                         np.array([[2.0, 1.0], [2.5, 1.5]]))
+        >>> round(float(comp[0]), 6), round(float(within[0]), 6)
+        (-0.3, 0.5)
     """
-    if metric not in table.metrics:
-        raise InputError([Problem("metric", f"unknown metric {metric!r}; the data has "
-                                  f"{sorted(table.metrics) or 'no metrics'}")])
-    if target not in TARGETS:
-        raise InputError([Problem("target", f"must be one of {list(TARGETS)}")])
-    by = tuple(by)
-    if by not in (("source",), ("source", "window")):
-        raise InputError([Problem("by", 'must be ["source"] or ["source", "window"]')])
-    if not 0 < confidence < 1:
-        raise InputError([Problem("confidence", "must be between 0 and 1")])
-    unknown_sources = sorted(set(exclude_sources) - set(table.sources))
-    if unknown_sources:
-        raise InputError([Problem("exclude_sources", f"unknown source(s) {unknown_sources}")])
-    day_numbers = table.dates.astype("datetime64[D]")
-    excluded_days = np.array([np.datetime64(d, "D") for d in exclude_dates],
-                             dtype="datetime64[D]")
-    outside = [d.isoformat() for d, x in zip(exclude_dates, excluded_days, strict=True)
-               if x not in day_numbers]
-    if outside:
-        raise InputError([Problem("exclude_dates", f"date(s) without data {outside}")])
-    caveats: list[str] = [_CAVEAT_QUESTION, _CAVEAT_DESIGN]
-
-    flagged = np.isin(day_numbers, np.array([np.datetime64(d, "D") for d in flagged_dates],
-                                            dtype="datetime64[D]"))
-    keep_day = ~np.isin(day_numbers, excluded_days)
-    keep_source = np.array([s not in set(exclude_sources) for s in table.sources])
-    if not keep_day.any() or not keep_source.any():
-        raise InputError([Problem("exclude_dates" if not keep_day.any() else "exclude_sources",
-                                  "the exclusions leave no data")])
-    cube = table.metrics[metric][keep_day][:, :, keep_source]       # (days, arms, sources, 3)
-    window = flagged[keep_day]
-    sources = [s for s, k in zip(table.sources, keep_source, strict=True) if k]
-    if by == ("source",):
-        cells = cube.sum(axis=0)                                     # (arms, sources, 3)
-        names = sources
-        pooled_mask = None
-    else:
-        flagged_cells = cube[window].sum(axis=0)
-        unflagged_cells = cube[~window].sum(axis=0)
-        cells = np.concatenate([unflagged_cells, flagged_cells], axis=1)
-        names = [f"{s}|unflagged" for s in sources] + [f"{s}|flagged" for s in sources]
-        pooled_mask = np.array([False] * len(sources) + [True] * len(sources))
-    present = cells[:, :, 0].sum(axis=0) > 0
-    cells, names = cells[:, present], [n for n, p in zip(names, present, strict=True) if p]
-    if pooled_mask is not None:
-        pooled_mask = pooled_mask[present]
-    if not names:
-        raise InputError([Problem("metric", f"no measured units of {metric!r} in the data")])
-
-    n, total, total_sq = cells[..., 0], cells[..., 1], cells[..., 2]  # (arms, cohorts)
-    arms = table.arms
-    if (n.sum(axis=1) == 0).any():
-        empty = [a for a, k in zip(arms, n.sum(axis=1), strict=True) if k == 0]
-        raise InputError([Problem("metric", f"arm(s) {empty} have no measured units of "
-                                  f"{metric!r}")])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        means = np.where(n > 0, total / n, np.nan)
-        variances = np.where(n > 1, (total_sq - total**2 / np.where(n > 0, n, 1))
-                             / np.where(n > 1, n - 1, 1), 0.0)
-    variances = np.clip(variances, 0.0, None)
-
-    pi = _target_weights(target, weights, names, n, flagged_days_given=bool(len(flagged_dates)),
-                         window_cohorts=pooled_mask, table_flagged=cube, window=window,
-                         by=by, caveats=caveats)
-    missing = (pi[None, :] > 0) & (n == 0)
-    if missing.any():
-        arm_index, cohort_index = np.argwhere(missing)[0]
-        cohort, arm = names[cohort_index], arms[arm_index]
-        raise UndefinedEstimateError(
-            f"cohort {cohort!r} has weight {pi[cohort_index]:.3g} in the {target} mix but no "
-            f"measured units in arm {arm!r}, so the re-weighted estimate is undefined; exclude "
-            "the cohort or choose another target", cohort=cohort, arm=arm)
-
-    z = float(stats.norm.ppf(0.5 + confidence / 2))
-    arm_n = n.sum(axis=1)
-    naive_mean = total.sum(axis=1) / arm_n
-    naive_var = np.where(arm_n > 1, (total_sq.sum(axis=1) - total.sum(axis=1) ** 2 / arm_n)
-                         / np.maximum(arm_n - 1, 1), 0.0) / arm_n
-    filled = np.where(n > 0, means, 0.0)
-    adjusted_mean = (pi[None, :] * filled).sum(axis=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        adjusted_var = (pi[None, :] ** 2 * np.where(n > 0, variances / np.where(n > 0, n, 1),
-                                                    0.0)).sum(axis=1)
-    shares = n / arm_n[:, None]
-
-    comparisons = []
-    for a in range(1, len(arms)):
-        naive = _estimate(naive_mean[0], naive_mean[a], naive_var[0], naive_var[a], z)
-        adjusted = _estimate(adjusted_mean[0], adjusted_mean[a], adjusted_var[0],
-                             adjusted_var[a], z)
-        composition, within = _kitagawa(shares[a], shares[0], means[a], means[0])
-        comparisons.append(Comparison(arms[a], naive, adjusted, composition, within))
-        if np.sign(naive.difference) != np.sign(adjusted.difference) and naive.difference:
-            caveats.append(f"For {arms[a]} the naive and re-weighted differences have opposite "
-                           "signs: the cohort mix, not the treatment, drives the naive reading.")
-    small = [names[c] for c in range(len(names)) if pi[c] > 0 and (n[:, c] < SMALL_COHORT).any()]
-    if small:
-        caveats.append(f"Cohorts with fewer than {SMALL_COHORT} measured units in some arm carry "
-                       f"weight ({', '.join(small[:5])}): their variance estimates are rough.")
-    caveats.append("Intervals treat the target weights as fixed and use the normal "
-                   f"approximation at {100 * confidence:g}%.")
-    cohorts = tuple(Cohort(name, float(pi[c]), {arm: int(n[i, c]) for i, arm in enumerate(arms)},
-                           {arm: _json(means[i, c]) for i, arm in enumerate(arms)})
-                    for c, name in enumerate(names))
-    return Reweighting(metric, target, by, tuple(comparisons), cohorts, tuple(caveats))
-
-
-def _target_weights(target: str, weights: Mapping[str, float] | None, names: list[str],
-                    n: np.ndarray, *, flagged_days_given: bool, window_cohorts: np.ndarray | None,
-                    table_flagged: np.ndarray, window: np.ndarray, by: tuple[str, ...],
-                    caveats: list[str]) -> np.ndarray:
-    if target != "custom" and weights:
-        raise InputError([Problem("weights", "weights are only given with target 'custom'")])
-    if target == "reference_arm":
-        return n[0] / n[0].sum()
-    if target == "pooled_unflagged":
-        if not flagged_days_given:
-            caveats.append("No days are flagged, so the pooled mix covers every day.")
-        if by == ("source",):
-            mix = _pooled_by_source(table_flagged, window)
-        else:
-            mix = np.where(window_cohorts, 0.0, n.sum(axis=0))
-        if mix.sum() <= 0:
-            raise InputError([Problem("target", "no measured units on unflagged days")])
-        return mix / mix.sum()
-    if not weights:
-        raise InputError([Problem("weights", "target 'custom' needs weights {cohort: w}")])
-    unknown = sorted(set(weights) - set(names))
-    if unknown:
-        raise InputError([Problem("weights", f"unknown cohort(s) {unknown}; cohorts are {names}")])
-    values = np.array([float(weights.get(name, 0.0)) for name in names])
-    if not np.isfinite(values).all() or (values < 0).any() or values.sum() <= 0:
-        raise InputError([Problem("weights", "weights must be finite, >= 0 and not all 0")])
-    return values / values.sum()
-
-
-def _pooled_by_source(cube: np.ndarray, window: np.ndarray) -> np.ndarray:
-    """Measured units per source cohort, all arms pooled, on unflagged days; in cohort order
-    (the kept sources that have measured units at all)."""
-    per_source = cube[~window].sum(axis=(0, 1))[:, 0]
-    present = cube.sum(axis=(0, 1))[:, 0] > 0
-    return per_source[present]
-
-
-def _estimate(ref_mean: float, arm_mean: float, ref_var: float, arm_var: float,
-              z: float) -> Estimate:
-    difference = arm_mean - ref_mean
-    se = float(np.sqrt(ref_var + arm_var))
-    if ref_mean != 0:
-        relative = difference / ref_mean
-        rel_se = float(np.sqrt(arm_var / ref_mean**2 + arm_mean**2 * ref_var / ref_mean**4))
-        rel = (relative, relative - z * rel_se, relative + z * rel_se)
-    else:
-        rel = (None, None, None)
-    return Estimate(float(ref_mean), float(arm_mean), float(difference),
-                    float(difference - z * se), float(difference + z * se), *rel)
-
-
-def _kitagawa(p_arm: np.ndarray, p_ref: np.ndarray, m_arm: np.ndarray, m_ref: np.ndarray
-              ) -> tuple[float, float]:
-    """Composition and within-cohort parts of the naive gap; a cohort absent in one arm takes
-    the other arm's mean, so its within part is 0 and its composition part carries it."""
-    m_arm = np.where(np.isnan(m_arm), m_ref, m_arm)
-    m_ref = np.where(np.isnan(m_ref), m_arm, m_ref)
-    m_arm, m_ref = np.nan_to_num(m_arm), np.nan_to_num(m_ref)
-    composition = float(((p_arm - p_ref) * (m_arm + m_ref) / 2).sum())
-    within = float(((m_arm - m_ref) * (p_arm + p_ref) / 2).sum())
+    shares = n / n.sum(axis=1, keepdims=True)
+    p_arm, p_ref = shares[1:], shares[:1]
+    m_arm, m_ref = means[1:], np.broadcast_to(means[:1], means[1:].shape)
+    m_arm, m_ref = np.where(np.isnan(m_arm), m_ref, m_arm), np.where(np.isnan(m_ref), m_arm, m_ref)
+    m_arm, m_ref = np.nan_to_num(m_arm), np.nan_to_num(m_ref)   # absent from both: p = 0 there
+    composition = ((p_arm - p_ref) * (m_arm + m_ref) / 2).sum(axis=1)
+    within = ((m_arm - m_ref) * (p_arm + p_ref) / 2).sum(axis=1)
     return composition, within
 
 
+def _check_request(table: ObservationTable, metric: str, target: str,
+                   weights: Mapping[str, float] | None, by: Sequence[str],
+                   confidence: float) -> tuple[str, ...]:
+    problems: list[Problem] = []
+    if metric not in table.metrics:
+        known = sorted(table.metrics)
+        problems.append(Problem("metric", f"unknown metric {metric!r}; the data has "
+                                f"{known if known else 'no metrics'}"))
+    if target not in TARGETS:
+        problems.append(Problem("target", f"unknown target {target!r}; must be one of "
+                                f"{list(TARGETS)}"))
+    elif target == "custom" and not weights:
+        problems.append(Problem("weights", "target 'custom' needs weights {cohort: weight}"))
+    elif target != "custom" and weights is not None:
+        problems.append(Problem("weights", "weights are only used with target 'custom'"))
+    grouping = (by,) if isinstance(by, str) else tuple(by)
+    if grouping not in GROUPINGS:
+        problems.append(Problem("by", f"{list(grouping)} is not a grouping; must be "
+                                '["source"] or ["source", "window"]'))
+    if isinstance(confidence, bool) or not isinstance(confidence, int | float) \
+            or not 0 < confidence < 1:
+        problems.append(Problem("confidence", "must be a number strictly between 0 and 1"))
+    if problems:
+        raise InputError(problems)
+    return grouping
+
+
+def _day_mask(table: ObservationTable, dates: Sequence[dt.date], field: str) -> np.ndarray:
+    """Which days of the table are in ``dates``; a date outside the table is an InputError."""
+    try:
+        wanted = np.array([np.datetime64(d, "D") for d in dates], dtype="datetime64[D]")
+    except (TypeError, ValueError):
+        raise InputError([Problem(field, "must be calendar dates (YYYY-MM-DD)")]) from None
+    days = table.dates.astype("datetime64[D]")
+    outside = sorted({str(d) for d in wanted[~np.isin(wanted, days)]})
+    if outside:
+        span = f"{days[0]} to {days[-1]}" if len(days) else "no days"
+        raise InputError([Problem(field, f"date(s) {outside} are outside the data ({span})")])
+    return np.isin(days, wanted)
+
+
+def _exclusions(table: ObservationTable, exclude_sources: Sequence[str],
+                exclude_dates: Sequence[dt.date]) -> tuple[np.ndarray, np.ndarray]:
+    """Masks of the days and sources kept."""
+    if isinstance(exclude_sources, str):
+        exclude_sources = (exclude_sources,)
+    unknown = sorted(set(exclude_sources) - set(table.sources))
+    if unknown:
+        raise InputError([Problem("exclude_sources", f"unknown source(s) {unknown}; the data "
+                                  f"has {list(table.sources)}")])
+    keep_day = ~_day_mask(table, exclude_dates, "exclude_dates")
+    keep_source = ~np.isin(np.array(table.sources, dtype=object),
+                           np.array(list(exclude_sources), dtype=object))
+    if not keep_day.any():
+        raise InputError([Problem("exclude_dates", "the exclusions leave no day")])
+    if not keep_source.any():
+        raise InputError([Problem("exclude_sources", "the exclusions leave no source")])
+    return keep_day, keep_source
+
+
+def _cohort_cells(cube: np.ndarray, flagged: np.ndarray, sources: tuple[str, ...],
+                  by: tuple[str, ...]) -> _Cells:
+    """Sum a ``(days, arms, sources, 3)`` cube into ``(arms, cohorts)`` sufficient statistics."""
+    if by == ("source",):
+        cells = cube.sum(axis=0)                                          # (arms, sources, 3)
+    else:
+        # Interleaved per source, in the order of _cohort_names.
+        split = np.stack([cube[~flagged].sum(axis=0), cube[flagged].sum(axis=0)], axis=2)
+        cells = split.reshape(split.shape[0], -1, 3)
+    return _Cells(_cohort_names(sources, by), cells[..., 0], cells[..., 1], cells[..., 2])
+
+
+def _cohort_names(sources: Sequence[str], by: tuple[str, ...]) -> tuple[str, ...]:
+    if by == ("source",):
+        return tuple(sources)
+    return tuple(f"{source}|{window}" for source in sources for window in WINDOWS)
+
+
+def _custom_weights(weights: Mapping[str, float], names: tuple[str, ...],
+                    all_names: tuple[str, ...]) -> np.ndarray:
+    """Normalised custom weights over the cohorts with measured units."""
+    problems: list[Problem] = []
+    for cohort in sorted(set(weights) - set(names)):
+        why = ("is excluded or has no measured units" if cohort in all_names
+               else "is not a cohort of this data and grouping")
+        problems.append(Problem("weights", f"cohort {cohort!r} {why}; cohorts are "
+                                f"{list(names)}"))
+    values = np.zeros(len(names))
+    for index, cohort in enumerate(names):
+        raw = weights.get(cohort, 0.0)
+        value = (math.nan if isinstance(raw, bool) or not isinstance(raw, int | float)
+                 else float(raw))
+        if not math.isfinite(value) or value < 0:
+            problems.append(Problem("weights", f"weight of {cohort!r} must be a finite number "
+                                    f">= 0, got {raw!r}"))
+        values[index] = value
+    if not problems and values.sum() <= 0:
+        problems.append(Problem("weights", "at least one cohort needs a weight > 0"))
+    if problems:
+        raise InputError(problems)
+    return values / values.sum()
+
+
+def _require_defined(pi: np.ndarray, cells: _Cells, arms: tuple[str, ...], target: str) -> None:
+    missing = (pi > 0) & (cells.n == 0)                                   # (arms, cohorts)
+    if not missing.any():
+        return
+    cohort_index, arm_index = np.argwhere(missing.T)[0]                   # first cohort, arm
+    cohort, arm = cells.names[cohort_index], arms[arm_index]
+    others = int(missing.sum()) - 1
+    more = f" ({others} more cohort/arm pair(s) like it)" if others else ""
+    raise UndefinedEstimateError(
+        f"cohort {cohort!r} has weight {pi[cohort_index]:.3g} in the {target} mix but no "
+        f"measured units in arm {arm!r}{more}, so the re-weighted estimate is undefined; "
+        "exclude that cohort's source or days, or choose another target (custom weights "
+        "without it)", cohort=cohort, arm=arm)
+
+
+def _unit_variance(n: np.ndarray, total: np.ndarray, total_sq: np.ndarray) -> np.ndarray:
+    """Unbiased per-unit variance ``(sum_sq - sum^2/n)/(n - 1)``; 0 where ``n < 2``."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        variance = (total_sq - total**2 / n) / (n - 1)
+    # Clip the tiny negatives that rounding of sum_sq - sum^2/n can give.
+    return np.where(n > 1, np.clip(variance, 0.0, None), 0.0)
+
+
+def _estimates(mean: np.ndarray, variance: np.ndarray, z: float) -> list[Estimate]:
+    """Each arm against arm 0: Welch-type SE of the difference, delta-method relative lift."""
+    ref_mean, ref_var = mean[0], variance[0]
+    arm_mean, arm_var = mean[1:], variance[1:]
+    difference = arm_mean - ref_mean
+    se = np.sqrt(arm_var + ref_var)
+    if ref_mean != 0:
+        relative = difference / ref_mean
+        rel_se = np.sqrt(arm_var / ref_mean**2 + arm_mean**2 * ref_var / ref_mean**4)
+        rel_low, rel_high = relative - z * rel_se, relative + z * rel_se
+    else:
+        relative = rel_low = rel_high = np.full(difference.shape, np.nan)
+    out = []
+    for i in range(difference.shape[0]):
+        estimate = Estimate(float(ref_mean), float(arm_mean[i]), float(difference[i]),
+                            float(difference[i] - z * se[i]), float(difference[i] + z * se[i]),
+                            _json(relative[i]), _json(rel_low[i]), _json(rel_high[i]))
+        out.append(estimate)
+    return out
+
+
+def _caveats(comparisons: tuple[Comparison, ...], pi: np.ndarray, cells: _Cells,
+             confidence: float) -> list[str]:
+    caveats = [f"Intervals are normal approximations at {100 * confidence:g}% with Welch-type "
+               "variances; they treat the target weights as fixed."]
+    weighted = pi > 0
+    single = weighted & (cells.n == 1).any(axis=0)
+    if single.any():
+        caveats.append("Cohorts with a single measured unit in some arm count as having no "
+                       f"variance there, so the interval is too narrow: {_names(cells, single)}.")
+    small = weighted & (cells.n < SMALL_COHORT).any(axis=0)
+    if small.any():
+        caveats.append(f"Cohorts with fewer than {SMALL_COHORT} measured units in some arm carry "
+                       f"target weight; their means and variances are rough: "
+                       f"{_names(cells, small)}.")
+    left_out = ~weighted & (cells.n > 0).any(axis=0)
+    if left_out.any():
+        units = int(cells.n[:, left_out].sum())
+        caveats.append(f"The target mix gives no weight to {_names(cells, left_out)} "
+                       f"({units:,} measured units): the re-weighted estimate says nothing "
+                       "about how the treatment worked on them.")
+    for comparison in comparisons:
+        naive, adjusted = comparison.naive.difference, comparison.adjusted.difference
+        if naive * adjusted < 0:
+            caveats.append(f"For {comparison.arm} the naive and re-weighted differences have "
+                           "opposite signs: the cohort mix, not only the treatment, drives the "
+                           "naive reading.")
+        parts = comparison.decomposition
+        if naive != 0 and abs(parts.composition) > abs(parts.within):
+            caveats.append(f"For {comparison.arm} most of the naive difference comes from a "
+                           f"different cohort mix (composition {parts.composition:+.4g}) rather "
+                           f"than from differences within cohorts ({parts.within:+.4g}).")
+    if any(c.naive.relative is None or c.adjusted.relative is None for c in comparisons):
+        caveats.append("The reference arm's mean is 0, so a relative lift is undefined "
+                       "(reported as null).")
+    return caveats
+
+
+def _names(cells: _Cells, mask: np.ndarray, limit: int = 5) -> str:
+    chosen = [name for name, pick in zip(cells.names, mask, strict=True) if pick]
+    more = f" and {len(chosen) - limit} more" if len(chosen) > limit else ""
+    return ", ".join(chosen[:limit]) + more
+
+
 def _json(value: float | None) -> float | None:
+    """A finite float, or ``None`` for a missing or non-finite value (JSON has no NaN)."""
     if value is None:
         return None
     value = float(value)
-    return value if np.isfinite(value) else None
+    return value if math.isfinite(value) else None

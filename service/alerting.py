@@ -25,6 +25,11 @@ from .tokens import SYSTEM_ACTOR
 OPEN, ACKNOWLEDGED, RESOLVED = "open", "acknowledged", "resolved"
 STATUSES = (OPEN, ACKNOWLEDGED, RESOLVED)
 
+# What changed before the diagnosis, named in the reason of an automatic resolution.
+CORRECTED_DATA = "corrected data"  # stored rows were replaced
+LATER_DATA = "later data"  # only new rows were added
+NEW_ALLOCATION = "the changed allocation schedule"
+
 
 @dataclass
 class AlertChanges:
@@ -39,10 +44,12 @@ class TransitionError(ValueError):
 
 
 def sync_alerts(session: Session, experiment: Experiment, diagnosis: Diagnosis | None, *,
-                diagnosis_version: int | None = None, now: dt.datetime | None = None
-                ) -> AlertChanges:
+                diagnosis_version: int | None = None, now: dt.datetime | None = None,
+                cause: str = CORRECTED_DATA) -> AlertChanges:
     """Bring the experiment's alerts in line with ``diagnosis`` (``None``: nothing to diagnose).
 
+    ``cause`` says what changed since the previous diagnosis; an alert resolved here gets the
+    reason "<cause> no longer supports it: <what the new diagnosis says instead>".
     Runs inside the caller's transaction; the caller commits.
     """
     now = now or utcnow()
@@ -81,7 +88,7 @@ def sync_alerts(session: Session, experiment: Experiment, diagnosis: Diagnosis |
         alert.active = False
         alert.updated_at = now
         if alert.status in (OPEN, ACKNOWLEDGED):
-            reason = "corrected data no longer supports it: " + _why_gone(alert, diagnosis)
+            reason = f"{cause} no longer supports it: {_why_gone(alert, diagnosis)}"
             previous = alert.status
             alert.status = RESOLVED
             alert.resolved_at = now

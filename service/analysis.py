@@ -22,9 +22,11 @@ from detectors import (
 )
 from detectors.data import STAT_FIELDS
 
-from .alerting import AlertChanges, sync_alerts
+from .alerting import CORRECTED_DATA, AlertChanges, sync_alerts
+from .campaigns import known_campaigns
 from .db.models import DiagnosisSnapshot, Experiment, Observation, utcnow
 from .http import entity_tag, json_safe
+from .notify.outbox import enqueue_for_changes
 
 NO_DATA = "no_data"
 
@@ -117,9 +119,10 @@ def snapshot_version(session: Session, experiment_id: str, version: int
 
 def refresh_diagnosis(session: Session, experiment: Experiment, *,
                       config: DiagnosisConfig | None = None,
-                      now: dt.datetime | None = None) -> Refresh:
+                      now: dt.datetime | None = None, cause: str = CORRECTED_DATA) -> Refresh:
     """Diagnose every stored row, keep the result as a new snapshot if it differs from the
-    latest one, and sync the alerts. The caller holds the experiment's write lock."""
+    latest one, and sync the alerts (``cause``: what changed, for resolution reasons).
+    The caller holds the experiment's write lock."""
     now = now or utcnow()
     table = load_table(session, experiment)
     schedule = schedule_for(experiment)
@@ -127,7 +130,9 @@ def refresh_diagnosis(session: Session, experiment: Experiment, *,
     document: dict[str, Any] | None = None
     series: dict[str, Any] | None = None
     if table is not None and int(table.entered.sum()) > 0:
-        diagnosis = diagnose(table, schedule, config=config, experiment=experiment.id)
+        # Registered campaigns are named on the flagged days of their dates and source.
+        diagnosis = diagnose(table, schedule, config=config, experiment=experiment.id,
+                             campaigns=known_campaigns(session, experiment.id))
         document = json_safe(diagnosis.to_dict())
         series = json_safe(daily_series(table, schedule, diagnosis))
     elif table is not None:
@@ -148,7 +153,9 @@ def refresh_diagnosis(session: Session, experiment: Experiment, *,
         assert latest is not None
         snapshot = latest
     changes = sync_alerts(session, experiment, diagnosis, diagnosis_version=snapshot.version,
-                          now=now)
+                          now=now, cause=cause)
+    # Same transaction as the alerts (outbox): delivered later by the notification worker.
+    enqueue_for_changes(session, experiment, changes, now=now)
     return Refresh(snapshot, diagnosis, changes, new_version)
 
 

@@ -13,17 +13,26 @@ from fastapi.openapi.utils import get_openapi
 from pydantic import BaseModel
 from starlette.concurrency import run_in_threadpool
 
+from .cors import add_cors
 from .db.session import Database
 from .http import BodyLimitMiddleware
+from .http_cache import ConditionalGetMiddleware
+from .metrics import install_metrics
+from .notify.settings import NotifySettings
+from .notify.worker import start_worker
+from .pages.router import router as pages_router
 from .problems import PROBLEM_MEDIA_TYPE, install_problem_handlers
 from .routers import (
     alerts,
+    campaigns,
+    deliveries,
     diagnosis,
     experiments,
     health,
     observations,
     problem_types,
     reweight,
+    sensitivity,
     tokens,
 )
 from .schemas.common import ProblemDetails
@@ -39,7 +48,8 @@ Authenticate with `Authorization: Bearer TOKEN`; scopes are read < write < admin
 """
 
 ROUTERS = (health.router, experiments.router, observations.router, diagnosis.router,
-           reweight.router, alerts.router, tokens.router, problem_types.router)
+           reweight.router, campaigns.router, sensitivity.router, alerts.router,
+           deliveries.router, tokens.router, problem_types.router, pages_router)
 # Models referenced from hand-written OpenAPI fragments (bodies parsed by the service itself).
 DOCUMENTED_MODELS: list[type[BaseModel]] = [ProblemDetails, *observations.DOCUMENTED_MODELS]
 _PROBLEM_CONTENT = {PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/ProblemDetails"}}}
@@ -56,14 +66,19 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     """Build the app; without ``settings`` they are read from ``INRUSH_*`` variables."""
     settings = settings or Settings()
     database = Database(settings.database_url, busy_timeout_ms=settings.sqlite_busy_timeout_ms)
+    notify_settings = NotifySettings(public_url=settings.public_url)
 
     @asynccontextmanager
     async def lifespan(_: FastAPI) -> AsyncIterator[None]:
         if settings.migrate_on_start:
             await run_in_threadpool(database.migrate)
+        # Webhook deliveries (INRUSH_NOTIFY_WORKER=0 leaves them to another process).
+        worker = start_worker(database, notify_settings)
         try:
             yield
         finally:
+            if worker is not None:
+                await run_in_threadpool(worker.stop)
             database.dispose()
 
     app = FastAPI(title="Inrush", version=package_version(), description=DESCRIPTION,
@@ -71,8 +86,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.database = database
     install_problem_handlers(app)
+    app.add_middleware(ConditionalGetMiddleware)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,
                        public_url=settings.public_url)
+    install_metrics(app)  # outside the others: times and counts every answer
+    add_cors(app)  # outermost: preflights and CORS headers on every answer, errors included
     for router in ROUTERS:
         app.include_router(router)
     app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]

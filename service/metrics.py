@@ -142,14 +142,14 @@ class ExperimentCollector(Collector):
             ids = list(session.scalars(select(Experiment.id).order_by(Experiment.id)))
             counts = dict(session.execute(
                 select(Alert.experiment_id, func.count()).where(Alert.status.in_(UNRESOLVED))
-                .group_by(Alert.experiment_id)).tuples())
+                .group_by(Alert.experiment_id)).all())
             latest = (select(DiagnosisSnapshot.experiment_id,
                              func.max(DiagnosisSnapshot.version).label("version"))
                       .group_by(DiagnosisSnapshot.experiment_id).subquery())
             documents: dict[str, dict[str, Any] | None] = dict(session.execute(
                 select(DiagnosisSnapshot.experiment_id, DiagnosisSnapshot.document)
                 .join(latest, (DiagnosisSnapshot.experiment_id == latest.c.experiment_id)
-                      & (DiagnosisSnapshot.version == latest.c.version))).tuples())
+                      & (DiagnosisSnapshot.version == latest.c.version))).all())
         for experiment_id in ids:
             open_alerts.add_metric([experiment_id], counts.get(experiment_id, 0))
             document = documents.get(experiment_id)

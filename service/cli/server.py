@@ -3,8 +3,12 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
+import os
 import sys
+import tempfile
+from collections.abc import Iterator
 from pathlib import Path
 
 from . import EXIT_FAILURE, EXIT_OK
@@ -62,10 +66,26 @@ def run_serve(args: argparse.Namespace) -> int:
         return EXIT_FAILURE
     finally:
         database.dispose()
-    uvicorn.run("service.app:create_app", factory=True, host=args.host, port=args.port,
-                workers=args.workers, log_level=args.log_level,
-                log_config=_log_config(args.log_level))
+    with _metrics_directory(args.workers):
+        uvicorn.run("service.app:create_app", factory=True, host=args.host, port=args.port,
+                    workers=args.workers, log_level=args.log_level,
+                    log_config=_log_config(args.log_level))
     return EXIT_OK
+
+
+@contextlib.contextmanager
+def _metrics_directory(workers: int) -> Iterator[None]:
+    """Several workers share request metrics through prometheus-client's multiprocess files:
+    give them a fresh directory unless PROMETHEUS_MULTIPROC_DIR names one already."""
+    if workers < 2 or os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        yield
+        return
+    with tempfile.TemporaryDirectory(prefix="inrush-metrics-") as directory:
+        os.environ["PROMETHEUS_MULTIPROC_DIR"] = directory
+        try:
+            yield
+        finally:
+            os.environ.pop("PROMETHEUS_MULTIPROC_DIR", None)
 
 
 def _log_config(level: str) -> dict[str, object]:

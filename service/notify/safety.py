@@ -110,6 +110,25 @@ def check_target(url: str, *, allow_hosts: Collection[str] = (),
                          allowed_by_name=allowed)
 
 
+def check_registration(url: str, *, allow_hosts: Collection[str] = (),
+                       resolver: Resolver = system_resolver) -> CheckedTarget | None:
+    """The check when a webhook is registered; ``None`` when the name does not resolve yet.
+
+    Form, scheme and addresses are checked as at delivery. A name that does not resolve now
+    (a receiver not deployed yet, a resolver unreachable from the service) is accepted: every
+    delivery checks it again and refuses it then if it points inward.
+    """
+    _, host, port = parse_target(url)
+    try:
+        ipaddress.ip_address(host)
+    except ValueError:
+        try:
+            resolver(host, port)
+        except (OSError, UnicodeError):
+            return None
+    return check_target(url, allow_hosts=allow_hosts, resolver=resolver)
+
+
 def pinned_url(target: CheckedTarget) -> tuple[str, dict[str, str], dict[str, str]]:
     """``(url, headers, extensions)`` that connect to ``target.address``.
 

@@ -101,7 +101,7 @@ def index_page(request: Request, session: Session = Depends(get_session),
     summaries = latest_summaries(session, [e.id for e in experiments])
     counts = dict(session.execute(
         select(Alert.experiment_id, func.count()).where(Alert.status.in_(UNRESOLVED))
-        .group_by(Alert.experiment_id)).tuples())
+        .group_by(Alert.experiment_id)).all())
     rows = []
     for experiment in experiments:
         summary = summaries.get(experiment.id)

@@ -14,6 +14,7 @@ from ..auth import require_read
 from ..db.models import DiagnosisSnapshot
 from ..db.session import get_session
 from ..http import JSON_MEDIA_TYPE, canonical_json, etag_matches
+from ..http_cache import REVALIDATE
 from ..problems import ProblemError
 from ..schemas.common import problem_responses
 from ..schemas.diagnosis import DiagnosisDocument, SeriesDocument, SnapshotList, SnapshotOut
@@ -84,7 +85,7 @@ def _no_diagnosis(experiment_id: str) -> ProblemError:
 
 def _conditional(document: dict[str, Any], etag: str, version: int,
                  if_none_match: str | None) -> Response:
-    headers = {"ETag": etag, "Cache-Control": "no-cache",
+    headers = {"ETag": etag, "Cache-Control": REVALIDATE,
                "X-Inrush-Diagnosis-Version": str(version)}
     if etag_matches(if_none_match, etag):
         return Response(status_code=304, headers=headers)

@@ -14,10 +14,12 @@ from sqlalchemy.orm import Session
 from detectors import AllocationSchedule, InputError
 from detectors.errors import Problem
 
+from ..alerting import NEW_ALLOCATION
 from ..analysis import SnapshotSummary, latest_snapshot, latest_summaries, refresh_diagnosis
 from ..auth import require_read, require_write
 from ..db.models import Experiment, utcnow
 from ..db.session import begin_write, get_session
+from ..notify.registration import validate_webhook_url
 from ..problems import ProblemError
 from ..schemas.common import problem_responses
 from ..schemas.experiments import (
@@ -45,6 +47,8 @@ def create_experiment(body: ExperimentCreate, request: Request, response: Respon
     steps = body.allocation or [AllocationStep.model_validate(
         {"from": body.start_date, "weights": [1.0 / len(body.arms)] * len(body.arms)})]
     allocation = _schedule(body.arms, steps, body.start_date)
+    if body.notify is not None:
+        validate_webhook_url(str(body.notify.webhook_url))
     now = utcnow()
     experiment = Experiment(
         id=body.id, title=body.title or body.id, start_date=body.start_date,
@@ -101,8 +105,10 @@ def change_experiment(experiment_id: str, body: ExperimentPatch, request: Reques
     A new allocation re-runs the diagnosis of the stored rows (and may open or resolve alerts).
     ``notify: null`` removes notifications; a ``notify`` without ``secret`` keeps the secret.
     """
-    experiment = lock_experiment(session, experiment_id)
     fields = body.model_fields_set
+    if "notify" in fields and body.notify is not None:  # resolves the host: before the lock
+        validate_webhook_url(str(body.notify.webhook_url))
+    experiment = lock_experiment(session, experiment_id)
     if "title" in fields:
         if body.title is None:
             raise ProblemError(422, "title cannot be null.",
@@ -128,7 +134,7 @@ def change_experiment(experiment_id: str, body: ExperimentPatch, request: Reques
     experiment.updated_at = utcnow()
     opened = resolved = 0
     if allocation_changed and latest_snapshot(session, experiment.id) is not None:
-        refresh = refresh_diagnosis(session, experiment)
+        refresh = refresh_diagnosis(session, experiment, cause=NEW_ALLOCATION)
         opened, resolved = len(refresh.alerts.opened), len(refresh.alerts.resolved)
     session.commit()
     out = experiment_out(request, session, experiment)

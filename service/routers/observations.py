@@ -12,6 +12,7 @@ from starlette.concurrency import run_in_threadpool
 
 from detectors.errors import InputError
 
+from ..alerting import CORRECTED_DATA, LATER_DATA
 from ..analysis import NO_DATA, refresh_diagnosis, stored_rows
 from ..auth import require_read, require_write
 from ..csvio import write_observations_csv
@@ -97,7 +98,8 @@ def _write(request: Request, session: Session, experiment_id: str, body: bytes,
 
     experiment = lock_experiment(session, experiment_id)
     inserted, updated = upsert_rows(session, experiment, rows)
-    refresh = refresh_diagnosis(session, experiment)
+    refresh = refresh_diagnosis(session, experiment,
+                                cause=CORRECTED_DATA if updated else LATER_DATA)
     session.commit()
     snapshot = refresh.snapshot
     result = WriteResult(

@@ -72,3 +72,18 @@ def test_allow_list_is_by_host_name() -> None:
     target = check_target("http://receiver.internal:9000/x", allow_hosts={"receiver.internal"},
                           resolver=resolves_to("10.0.0.5"))
     assert target.address == "10.0.0.5"
+
+
+def test_registration_accepts_names_that_do_not_resolve_yet() -> None:
+    from service.notify.safety import check_registration
+
+    def fails(host: str, port: int) -> list[str]:
+        raise OSError("Name or service not known")
+
+    assert check_registration("https://hooks.example.test/inrush", resolver=fails) is None
+    with pytest.raises(UnsafeTargetError, match="private"):
+        check_registration("https://hooks.larkspur.example/", resolver=resolves_to("10.9.8.7"))
+    with pytest.raises(UnsafeTargetError, match="loopback"):
+        check_registration("http://127.0.0.1:9000/", resolver=fails)
+    with pytest.raises(UnsafeTargetError, match="scheme"):
+        check_registration("file:///etc/hosts", resolver=fails)
