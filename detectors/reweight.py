@@ -411,9 +411,11 @@ def _estimates(mean: np.ndarray, variance: np.ndarray, z: float) -> list[Estimat
     difference = arm_mean - ref_mean
     se = np.sqrt(arm_var + ref_var)
     if ref_mean != 0:
-        relative = difference / ref_mean
-        rel_se = np.sqrt(arm_var / ref_mean**2 + arm_mean**2 * ref_var / ref_mean**4)
-        rel_low, rel_high = relative - z * rel_se, relative + z * rel_se
+        # (1/m_r^2) Var(m_a) + (m_a^2/m_r^4) Var(m_r), arranged so that m_r^4 cannot underflow.
+        with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+            relative = difference / ref_mean
+            rel_se = np.sqrt(arm_var + (arm_mean / ref_mean) ** 2 * ref_var) / abs(ref_mean)
+            rel_low, rel_high = relative - z * rel_se, relative + z * rel_se
     else:
         relative = rel_low = rel_high = np.full(difference.shape, np.nan)
     out = []
@@ -457,8 +459,8 @@ def _caveats(comparisons: tuple[Comparison, ...], pi: np.ndarray, cells: _Cells,
                            f"different cohort mix (composition {parts.composition:+.4g}) rather "
                            f"than from differences within cohorts ({parts.within:+.4g}).")
     if any(c.naive.relative is None or c.adjusted.relative is None for c in comparisons):
-        caveats.append("The reference arm's mean is 0, so a relative lift is undefined "
-                       "(reported as null).")
+        caveats.append("The reference arm's mean is 0 (or too close to 0), so a relative lift "
+                       "is undefined (reported as null).")
     return caveats
 
 

@@ -24,6 +24,7 @@ from detectors.data import STAT_FIELDS
 
 from .alerting import CORRECTED_DATA, AlertChanges, sync_alerts
 from .campaigns import known_campaigns
+from .db.locks import hold_experiment_lock
 from .db.models import DiagnosisSnapshot, Experiment, Observation, utcnow
 from .http import entity_tag, json_safe
 from .notify.outbox import enqueue_for_changes
@@ -122,7 +123,9 @@ def refresh_diagnosis(session: Session, experiment: Experiment, *,
                       now: dt.datetime | None = None, cause: str = CORRECTED_DATA) -> Refresh:
     """Diagnose every stored row, keep the result as a new snapshot if it differs from the
     latest one, and sync the alerts (``cause``: what changed, for resolution reasons).
-    The caller holds the experiment's write lock."""
+    Takes the experiment's write lock unless the transaction holds it already
+    (:mod:`service.db.locks`): two workers never diagnose one experiment at once."""
+    hold_experiment_lock(session, experiment.id)
     now = now or utcnow()
     table = load_table(session, experiment)
     schedule = schedule_for(experiment)

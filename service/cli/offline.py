@@ -12,6 +12,7 @@ from typing import Any
 from detectors import AllocationSchedule, InputError, ObservationTable, diagnose, reweight
 
 from ..csvio import read_observations_csv
+from ..traffic import DEFAULT_SENSITIVITY_DAYS, ArmTraffic, sensitivity_document
 from . import EXIT_BAD_INPUT, EXIT_OK
 from .report import format_diagnosis, format_reweighting
 
@@ -67,9 +68,15 @@ def run_analyze(args: argparse.Namespace) -> int:
     try:
         table, schedule = _load(args)
         result = diagnose(table, schedule, experiment=args.file.stem)
+        document = result.to_dict()
+        traffic = ArmTraffic.from_table(table, schedule)
+        if traffic is not None:  # the smallest inflow over 2 days these thresholds would flag
+            document["sensitivity"] = sensitivity_document(
+                traffic, days=DEFAULT_SENSITIVITY_DAYS, alpha=result.config.alpha,
+                max_window=result.config.max_window)
     except InputError as error:
         return _bad_input(error)
-    _print(result.to_dict(), args.json, lambda doc: format_diagnosis(doc, result))
+    _print(document, args.json, lambda doc: format_diagnosis(doc, result))
     return EXIT_OK
 
 

@@ -100,13 +100,16 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
                            reweight: Mapping[str, Any] | None = None,
                            reweight_problem: str | None = None,
                            diagnosis_version: int | None = None,
-                           links: Mapping[str, str] | None = None) -> str:
+                           links: Mapping[str, str] | None = None,
+                           campaigns: Sequence[Mapping[str, Any]] = (),
+                           sensitivity: Mapping[str, Any] | None = None) -> str:
     """The status page of one experiment.
 
     ``experiment``: ``id, title, arms, start_date``; ``diagnosis`` and ``series``: the API's
     documents (``None`` before any unit); ``alerts``: unresolved alerts as the API lists them;
     ``reweight``: a reweight answer for the first metric, or ``reweight_problem`` saying why
-    there is none.
+    there is none; ``campaigns``: registered campaigns with their checks and ``sensitivity``
+    the sensitivity answer, as the API gives them.
     """
     status = diagnosis.get("status") if diagnosis else "no_data"
     metrics = list((series or {}).get("metrics", []))
@@ -129,13 +132,18 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
         reweight_problem=reweight_problem, caveats=caveats,
         sources=source_totals(series) if series else [],
         arms=list(experiment.get("arms", [])), version=diagnosis_version,
-        links=dict(links or {}))
+        links=dict(links or {}), campaigns=list(campaigns), sensitivity=sensitivity)
 
 
 def render_index_page(experiments: Sequence[Mapping[str, Any]]) -> str:
     """The list of experiments: ``id, title, status, as_of, open_alerts`` each."""
     rows = [{**e, "status_view": status_view(e.get("status"))} for e in experiments]
     return environment().get_template("index.html").render(experiments=rows)
+
+
+def render_not_found(experiment_id: str) -> str:
+    """The page for an experiment id that does not exist."""
+    return environment().get_template("not_found.html").render(experiment_id=experiment_id)
 
 
 def render_token_page(*, reason: str, next_path: str) -> str:

@@ -20,6 +20,7 @@ from detectors import InputError, reweight
 from detectors.errors import UndefinedEstimateError
 
 from ..analysis import latest_snapshot, latest_summaries, load_table
+from ..campaigns import campaign_document, stored_campaigns
 from ..db.models import Alert, Experiment
 from ..db.session import get_session
 from ..http import json_safe
@@ -28,7 +29,13 @@ from ..routers.common import base_url
 from ..routers.reweight import flagged_dates
 from ..settings import Settings
 from ..tokens import Principal, Scope, authenticate
-from .render import render_experiment_page, render_index_page, render_token_page
+from ..traffic import sensitivity_document, stored_arm_traffic, thresholds_of
+from .render import (
+    render_experiment_page,
+    render_index_page,
+    render_not_found,
+    render_token_page,
+)
 
 COOKIE = "inrush_token"
 COOKIE_PATH = "/experiments"
@@ -122,9 +129,8 @@ def experiment_page(experiment_id: str, request: Request,
         return blocked
     experiment = session.get(Experiment, experiment_id)
     if experiment is None:
-        return HTMLResponse(render_index_page([]).replace(
-            "No experiments yet.", f"There is no experiment {experiment_id!r}."),
-            status_code=404, headers=PAGE_HEADERS)
+        return HTMLResponse(render_not_found(experiment_id), status_code=404,
+                            headers=PAGE_HEADERS)
     snapshot = latest_snapshot(session, experiment_id)
     document = snapshot.document if snapshot else None
     series = snapshot.series if snapshot else None
@@ -133,16 +139,24 @@ def experiment_page(experiment_id: str, request: Request,
                              .order_by(Alert.id.desc()))
     alert_rows = [alert_out(request, a).model_dump(mode="json") for a in alerts]
     effect, problem = _effect(session, experiment, document, series)
+    traffic = stored_arm_traffic(session, experiment)
+    campaigns = [campaign_document(row, experiment, traffic)
+                 for row in stored_campaigns(session, experiment_id)]
+    alpha, max_window = thresholds_of(document)
+    sensitivity = (sensitivity_document(traffic, alpha=alpha, max_window=max_window)
+                   if traffic is not None else None)
     base = base_url(request)
     links = {"diagnosis (JSON)": f"{base}/v1/experiments/{experiment_id}/diagnosis",
              "daily series (JSON)": f"{base}/v1/experiments/{experiment_id}/series",
-             "alerts (JSON)": f"{base}/v1/alerts?experiment={experiment_id}"}
+             "alerts (JSON)": f"{base}/v1/alerts?experiment={experiment_id}",
+             "campaigns (JSON)": f"{base}/v1/experiments/{experiment_id}/campaigns",
+             "sensitivity (JSON)": f"{base}/v1/experiments/{experiment_id}/sensitivity"}
     html = render_experiment_page(
         experiment={"id": experiment.id, "title": experiment.title, "arms": experiment.arms,
                     "start_date": experiment.start_date.isoformat()},
         diagnosis=document, series=series, alerts=alert_rows, reweight=effect,
         reweight_problem=problem, diagnosis_version=snapshot.version if snapshot else None,
-        links=links)
+        links=links, campaigns=campaigns, sensitivity=sensitivity)
     return HTMLResponse(html, headers=PAGE_HEADERS)
 
 

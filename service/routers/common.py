@@ -3,11 +3,10 @@
 from __future__ import annotations
 
 from fastapi import Request
-from sqlalchemy import select
 from sqlalchemy.orm import Session
 
+from ..db.locks import lock_experiment_for_write
 from ..db.models import Experiment
-from ..db.session import begin_write
 from ..problems import ProblemError
 from ..settings import Settings
 
@@ -35,12 +34,11 @@ def get_experiment(session: Session, experiment_id: str) -> Experiment:
 def lock_experiment(session: Session, experiment_id: str) -> Experiment:
     """Start the write transaction and lock the experiment (404 when it does not exist).
 
-    Writers of one experiment are serialised, so each diagnosis sees every committed row and
-    snapshot versions never collide.
+    Writers of one experiment are serialised across workers and replicas
+    (:mod:`service.db.locks`), so each diagnosis sees every committed row and snapshot versions
+    never collide.
     """
-    begin_write(session)
-    experiment = session.scalar(select(Experiment).where(Experiment.id == experiment_id)
-                                .with_for_update())
+    experiment = lock_experiment_for_write(session, experiment_id)
     if experiment is None:
         raise not_found(experiment_id)
     return experiment

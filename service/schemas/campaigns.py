@@ -3,9 +3,10 @@
 from __future__ import annotations
 
 import datetime as dt
-from typing import Annotated
+import re
+from typing import Annotated, Any
 
-from pydantic import BaseModel, ConfigDict, Field, Strict, StringConstraints
+from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, Strict, StringConstraints
 
 from .observations import AlertCounts, DiagnosisRef
 
@@ -13,7 +14,19 @@ CampaignName = Annotated[str, StringConstraints(min_length=1, max_length=100,
                                                 strip_whitespace=True)]
 SourceName = Annotated[str, StringConstraints(min_length=1, max_length=128,
                                               strip_whitespace=True)]
-Day = Annotated[dt.date, Strict()]
+_ISO_DAY = re.compile(r"\d{4}-\d{2}-\d{2}")
+
+
+def _iso_day_text(value: Any) -> Any:
+    # pydantic alone would also take numbers (as timestamps) and date-times.
+    if isinstance(value, dt.date) and not isinstance(value, dt.datetime):
+        return value
+    if not isinstance(value, str) or not _ISO_DAY.fullmatch(value.strip()):
+        raise ValueError("must be a calendar date written YYYY-MM-DD")
+    return value.strip()
+
+
+Day = Annotated[dt.date, BeforeValidator(_iso_day_text)]
 Share = Annotated[float, Strict(), Field(ge=0.0, le=1.0)]
 
 

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import json
+import threading
 import time
 from typing import Any
 
@@ -118,3 +119,27 @@ def test_deliveries_need_read_scope_and_an_existing_alert(anonymous: Any,
     listing = anonymous.get(f"/v1/alerts/{alert['id']}/deliveries", headers=reader)
     assert listing.status_code == 200
     assert listing.json() == {"alert": alert["id"], "webhook_configured": False, "items": []}
+
+
+def test_the_app_runs_the_worker_in_its_lifespan(settings: Any,
+                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    from fastapi.testclient import TestClient
+
+    from service.app import create_app
+
+    monkeypatch.setenv("INRUSH_NOTIFY_WORKER", "1")
+    monkeypatch.setenv("INRUSH_NOTIFY_POLL_SECONDS", "0.1")
+    monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1")
+    with running_receiver() as receiver:
+        with TestClient(create_app(settings)) as client:
+            client.headers["Authorization"] = f"Bearer {settings.admin_token.get_secret_value()}"
+            client.post("/v1/experiments", json={**EXPERIMENT, "notify": {
+                "webhook_url": f"{receiver.url}/hook", "secret": SECRET}})
+            upload_csv(client, demo_csv_text())
+            expected = len(client.get("/v1/alerts").json()["items"])
+            deadline = time.monotonic() + 20
+            while len(receiver.requests) < expected and time.monotonic() < deadline:
+                time.sleep(0.05)
+        # Leaving the client ran the shutdown: the worker stopped with the app.
+        assert len(receiver.requests) == expected
+        assert not any(t.name == "inrush-notify" for t in threading.enumerate())

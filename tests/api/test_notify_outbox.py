@@ -69,9 +69,10 @@ def seed(database: Database, webhook_url: str | None, secret: str | None = SECRE
                                           "sum": float(record["routes_saved.sum"]),
                                           "sum_sq": float(record["routes_saved.sum_sq"])}}))
         session.flush()
-        refresh = refresh_diagnosis(session, experiment)
-        queued = enqueue_for_changes(session, experiment, refresh.alerts,
-                                     public_url="https://inrush.larkspur.example")
+        refresh = refresh_diagnosis(session, experiment)  # queues in the same transaction
+        queued = list(session.scalars(select(Outbox).order_by(Outbox.id)))
+        # Queuing again for the same changes adds nothing: event ids are unique.
+        assert enqueue_for_changes(session, experiment, refresh.alerts) == []
         if commit:
             session.commit()
         else:
@@ -90,7 +91,9 @@ def attempts(database: Database, outbox_id: int) -> list[DeliveryAttempt]:
             DeliveryAttempt.outbox_id == outbox_id).order_by(DeliveryAttempt.id)))
 
 
-def test_enqueue_shares_the_alert_transaction(database: Database) -> None:
+def test_enqueue_shares_the_alert_transaction(database: Database,
+                                              monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("INRUSH_PUBLIC_URL", "https://inrush.larkspur.example/")
     seed(database, "https://hooks.larkspur.example/inrush", commit=False)
     with database.sessions() as session:
         assert session.scalar(select(func.count()).select_from(Alert)) == 0
@@ -116,8 +119,9 @@ def test_no_webhook_no_notification_and_no_repeat_without_change(database: Datab
         assert experiment is not None
         experiment.webhook_url = "https://hooks.larkspur.example/inrush"
         again = refresh_diagnosis(session, experiment)
-        assert enqueue_for_changes(session, experiment, again.alerts) == []
+        assert again.alerts.opened == [] and again.alerts.resolved == []
         session.commit()
+    assert rows(database) == []
 
 
 def test_resolution_is_notified_with_its_own_event_id(database: Database) -> None:
@@ -134,9 +138,9 @@ def test_resolution_is_notified_with_its_own_event_id(database: Database) -> Non
             row.entered -= 900
             row.metrics = {}
         session.flush()
-        refresh = refresh_diagnosis(session, experiment)
-        resolved = enqueue_for_changes(session, experiment, refresh.alerts)
+        refresh_diagnosis(session, experiment)
         session.commit()
+    resolved = [r for r in rows(database) if r.event_id not in opened_ids]
     assert resolved and {r.event_type for r in resolved} == {"alert.resolved"}
     assert not opened_ids & {r.event_id for r in resolved}
     assert all(r.payload["data"]["alert"]["status"] == "resolved" for r in resolved)
