@@ -14,6 +14,8 @@ from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 from sqlalchemy import select
+from sqlalchemy.dialects.postgresql import insert as postgresql_insert
+from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session
 
 from detectors import Diagnosis, Finding
@@ -54,21 +56,24 @@ def sync_alerts(session: Session, experiment: Experiment, diagnosis: Diagnosis |
     """
     now = now or utcnow()
     findings = {(f.kind, f.key): f for f in (diagnosis.findings() if diagnosis else ())}
+    # Locked (PostgreSQL) and re-read, so that a person's concurrent acknowledge or resolve
+    # is either seen here or waits for this transaction.
     existing = {(a.kind, a.key): a for a in session.scalars(
-        select(Alert).where(Alert.experiment_id == experiment.id))}
+        select(Alert).where(Alert.experiment_id == experiment.id)
+        .with_for_update(of=Alert).execution_options(populate_existing=True))}
     changes = AlertChanges()
 
     for identity, finding in findings.items():
         alert = existing.get(identity)
         if alert is None:
-            alert = Alert(experiment_id=experiment.id, kind=finding.kind, key=finding.key,
-                          status=OPEN, opened_at=now, updated_at=now, active=True)
-            _refresh(alert, finding, now)
-            session.add(alert)
-            _record(session, alert, "opened", None, OPEN, SYSTEM_ACTOR, None,
-                    diagnosis_version, now)
-            changes.opened.append(alert)
-            continue
+            alert = _insert_alert(session, experiment.id, finding, now)
+            if alert is not None:
+                _record(session, alert, "opened", None, OPEN, SYSTEM_ACTOR, None,
+                        diagnosis_version, now)
+                changes.opened.append(alert)
+                continue
+            # Inserted meanwhile by a writer outside the experiment's lock: seen again.
+            alert = existing[identity] = _locked_alert(session, experiment.id, identity)
         reappeared = not alert.active
         _refresh(alert, finding, now)
         if reappeared and alert.status == RESOLVED:
@@ -133,12 +138,43 @@ def resolve(session: Session, alert: Alert, actor: str, note: str | None = None,
     return alert
 
 
+def _finding_fields(finding: Finding) -> dict[str, Any]:
+    return {"severity": finding.severity, "title": finding.title[:500],
+            "detail": json_safe(dict(finding.detail))}
+
+
 def _refresh(alert: Alert, finding: Finding, now: dt.datetime) -> None:
-    alert.severity = finding.severity
-    alert.title = finding.title[:500]
-    alert.detail = json_safe(dict(finding.detail))
+    for name, value in _finding_fields(finding).items():
+        setattr(alert, name, value)
     alert.active = True
     alert.last_seen_at = now
+
+
+def _insert_alert(session: Session, experiment_id: str, finding: Finding, now: dt.datetime
+                  ) -> Alert | None:
+    """Insert the finding's alert unless ``(experiment, kind, key)`` exists already (``INSERT
+    ... ON CONFLICT DO NOTHING``); the new alert, or ``None`` when the row existed."""
+    dialect = session.get_bind().dialect.name
+    if dialect not in ("postgresql", "sqlite"):
+        raise RuntimeError(f"alert upserts are implemented for SQLite and PostgreSQL, not "
+                           f"{dialect}")
+    insert = postgresql_insert if dialect == "postgresql" else sqlite_insert
+    statement = (insert(Alert)
+                 .values(experiment_id=experiment_id, kind=finding.kind, key=finding.key,
+                         status=OPEN, active=True, opened_at=now, last_seen_at=now,
+                         updated_at=now, **_finding_fields(finding))
+                 .on_conflict_do_nothing(index_elements=["experiment_id", "kind", "key"])
+                 .returning(Alert.id))
+    alert_id = session.scalar(statement)
+    return None if alert_id is None else session.get(Alert, alert_id)
+
+
+def _locked_alert(session: Session, experiment_id: str, identity: tuple[str, str]) -> Alert:
+    kind, key = identity
+    return session.scalars(
+        select(Alert).where(Alert.experiment_id == experiment_id, Alert.kind == kind,
+                            Alert.key == key)
+        .with_for_update(of=Alert).execution_options(populate_existing=True)).one()
 
 
 def _record(session: Session, alert: Alert, action: str, from_status: str | None,

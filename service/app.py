@@ -13,10 +13,12 @@ from fastapi.openapi.utils import get_openapi
 from pydantic import BaseModel
 from starlette.concurrency import run_in_threadpool
 
+from .access_log import AccessLogMiddleware
 from .cors import add_cors
 from .db.session import Database
 from .http import BodyLimitMiddleware
 from .http_cache import ConditionalGetMiddleware
+from .json_guard import StrictJSONMiddleware
 from .metrics import install_metrics
 from .notify.settings import NotifySettings
 from .notify.worker import start_worker
@@ -65,7 +67,9 @@ def package_version() -> str:
 def create_app(settings: Settings | None = None) -> FastAPI:
     """Build the app; without ``settings`` they are read from ``INRUSH_*`` variables."""
     settings = settings or Settings()
-    database = Database(settings.database_url, busy_timeout_ms=settings.sqlite_busy_timeout_ms)
+    database = Database(settings.database_url, busy_timeout_ms=settings.sqlite_busy_timeout_ms,
+                        pool_size=settings.database_pool_size,
+                        max_overflow=settings.database_max_overflow)
     notify_settings = NotifySettings(public_url=settings.public_url)
 
     @asynccontextmanager
@@ -87,10 +91,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.database = database
     install_problem_handlers(app)
     app.add_middleware(ConditionalGetMiddleware)
+    app.add_middleware(StrictJSONMiddleware)  # inside the size limit: reads bodies it allows
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,
                        public_url=settings.public_url)
     install_metrics(app)  # outside the others: times and counts every answer
-    add_cors(app)  # outermost: preflights and CORS headers on every answer, errors included
+    add_cors(app)  # preflights and CORS headers on every answer, errors included
+    app.add_middleware(AccessLogMiddleware)  # outermost: ids and logs every answer
     for router in ROUTERS:
         app.include_router(router)
     app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]

@@ -8,7 +8,6 @@ answer lists everything to fix. Nothing is written unless every row is valid.
 from __future__ import annotations
 
 import datetime as dt
-import json
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -26,6 +25,7 @@ from detectors.errors import InputError, Problem
 
 from .csvio import read_observations_csv
 from .db.models import Experiment, Observation, utcnow
+from .json_guard import JSONBodyError, find_bad_string, format_path, strict_loads
 from .schemas.observations import ObservationIn
 
 BASE_COLUMNS = ("date", "arm", "source", "entered")
@@ -64,15 +64,18 @@ class ValidRows:
 
 def parse_json_body(body: bytes, max_rows: int) -> ParsedBody:
     """The rows of ``{"rows": [...]}`` as a flat frame; shape problems raise InputError."""
+    # Strict: UTF-8, no NaN/Infinity, no repeated member names, no NUL or lone surrogates.
     try:
-        document = json.loads(body.decode("utf-8-sig"), parse_constant=_reject_constant)
-    except UnicodeDecodeError as error:
-        raise MalformedBodyError(f"the body is not UTF-8 (byte {error.start})") from None
-    except json.JSONDecodeError as error:
-        raise MalformedBodyError(f"the body is not valid JSON: {error.msg} at line "
-                                 f"{error.lineno} column {error.colno}") from None
-    except ValueError as error:
-        raise MalformedBodyError(str(error)) from None
+        document = strict_loads(body, check_strings=False)
+    except JSONBodyError as error:
+        raise MalformedBodyError(error.message) from None
+    found = find_bad_string(document)
+    if found is not None:
+        path, reason = found
+        row = path[1] if len(path) >= 2 and path[0] == "rows" and isinstance(path[1], int) \
+            else None
+        field = format_path(path[2:] if row is not None else path)
+        raise InputError([Problem(field, reason, row)])
     if not isinstance(document, dict) or "rows" not in document:
         raise InputError([Problem("rows", 'the body must be an object {"rows": [...]}')])
     unknown = sorted(set(document) - {"rows"})
@@ -147,12 +150,16 @@ def validate_rows(parsed: ParsedBody, experiment: Experiment, *, today: dt.date,
 
 
 def upsert_rows(session: Session, experiment: Experiment, rows: ValidRows) -> tuple[int, int]:
-    """Insert or replace the rows (key: experiment, date, arm, source); (inserted, updated)."""
+    """Insert or replace the rows (key: experiment, date, arm, source); (inserted, updated).
+
+    The upsert itself is atomic (``INSERT ... ON CONFLICT DO UPDATE``); the two counts are exact
+    because the caller holds the experiment's write lock (``service.db.locks``).
+    """
     first, last = rows.dates
-    existing = set(session.execute(
+    existing = {tuple(row) for row in session.execute(
         select(Observation.date, Observation.arm, Observation.source).where(
             Observation.experiment_id == experiment.id, Observation.date >= first,
-            Observation.date <= last)).tuples())
+            Observation.date <= last))}
     updated = sum((r["date"], r["arm"], r["source"]) in existing for r in rows.records)
     dialect = session.get_bind().dialect.name
     insert = postgresql_insert if dialect == "postgresql" else sqlite_insert
@@ -205,7 +212,3 @@ def _merge(first: list[Problem], second: list[Problem]) -> list[Problem]:
         merged.append(problem)
     merged.sort(key=lambda p: (-1 if p.row is None else p.row, p.field))
     return merged
-
-
-def _reject_constant(name: str) -> None:
-    raise ValueError(f"{name} is not a JSON number; send finite numbers")

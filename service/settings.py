@@ -30,6 +30,11 @@ class Settings(BaseSettings):
     migrate_on_start: bool = Field(True, description="apply database migrations at startup")
     sqlite_busy_timeout_ms: int = Field(30_000, ge=0,
                                         description="how long a SQLite writer waits for a lock")
+    database_pool_size: int = Field(
+        5, ge=1, description="PostgreSQL connections each worker process keeps open")
+    database_max_overflow: int = Field(
+        10, ge=0, description="extra PostgreSQL connections a worker process may open under "
+                              "load (closed again when returned)")
 
     def base_url(self, fallback: str) -> str:
         """The public base URL without a trailing slash (``fallback`` when unset)."""

@@ -10,8 +10,12 @@ import sys
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from . import EXIT_FAILURE, EXIT_OK
+
+if TYPE_CHECKING:
+    from ..db.session import Database
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
@@ -53,14 +57,22 @@ def run_serve(args: argparse.Namespace) -> int:
     except ValidationError as error:
         print(f"inrush serve: invalid settings:\n{error}", file=sys.stderr)
         return EXIT_FAILURE
-    # Migrate once here so that several workers do not race at startup.
+    # Migrate once here so that several workers do not race at startup. With
+    # INRUSH_MIGRATE_ON_START=0 (replicas; `inrush db upgrade` runs as its own step) only check
+    # that the schema is the one this version needs.
     try:
         database = Database(settings.database_url)
     except (SQLAlchemyError, ImportError) as error:
         print(f"inrush serve: cannot use INRUSH_DATABASE_URL: {error}", file=sys.stderr)
         return EXIT_FAILURE
     try:
-        database.migrate()
+        if settings.migrate_on_start:
+            database.migrate()
+        else:
+            problem = _schema_problem(database)
+            if problem:
+                print(f"inrush serve: {problem}", file=sys.stderr)
+                return EXIT_FAILURE
     except (SQLAlchemyError, ImportError) as error:
         print(f"inrush serve: cannot prepare the database: {error}", file=sys.stderr)
         return EXIT_FAILURE
@@ -71,6 +83,20 @@ def run_serve(args: argparse.Namespace) -> int:
                     workers=args.workers, log_level=args.log_level,
                     log_config=_log_config(args.log_level))
     return EXIT_OK
+
+
+def _schema_problem(database: Database) -> str | None:
+    """Why the database's schema does not fit this version (``None`` when it is at head)."""
+    from alembic.script import ScriptDirectory
+
+    from ..db.session import alembic_config
+
+    head = ScriptDirectory.from_config(alembic_config(database.url)).get_current_head()
+    current = database.current_revision()
+    if current == head:
+        return None
+    return (f"the database is at migration {current or '(none)'}, this version needs {head}; "
+            "run `inrush db upgrade` first (INRUSH_MIGRATE_ON_START is off)")
 
 
 @contextlib.contextmanager

@@ -2,8 +2,8 @@
 
 SQLite gets WAL journaling, a busy timeout and enforced foreign keys on every connection, and
 write transactions start with ``BEGIN IMMEDIATE`` so that two writers queue on the lock instead
-of failing when a read transaction tries to upgrade. On PostgreSQL a writer locks the
-experiment's row (``SELECT ... FOR UPDATE``) so writes to one experiment are serialised.
+of failing when a read transaction tries to upgrade. On PostgreSQL writes to one experiment
+are serialised by an advisory lock and the experiment's row lock (``service.db.locks``).
 """
 
 from __future__ import annotations
@@ -23,15 +23,22 @@ MIGRATIONS_DIR = Path(__file__).resolve().parent.parent / "migrations"
 _BEGIN_OPTION = "inrush_sqlite_begin"
 
 
-def make_engine(url: str, *, busy_timeout_ms: int = 30_000) -> Engine:
-    """An engine for ``url``; SQLite connections are configured for concurrent service use."""
+def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 5,
+                max_overflow: int = 10) -> Engine:
+    """An engine for ``url``; SQLite connections are configured for concurrent service use.
+
+    ``pool_size`` and ``max_overflow`` bound the connections of this process to a server
+    database (at most their sum are open at once).
+    """
     parsed = make_url(url)
     if parsed.get_backend_name() != "sqlite":
-        return create_engine(url, pool_pre_ping=True)
+        return create_engine(url, pool_pre_ping=True, pool_size=pool_size,
+                             max_overflow=max_overflow, hide_parameters=True)
     database = parsed.database or ""
     if database and database != ":memory:" and not database.startswith("file:"):
         Path(database).expanduser().resolve().parent.mkdir(parents=True, exist_ok=True)
-    engine = create_engine(url, connect_args={"check_same_thread": False,
+    # hide_parameters: error messages and logs never show bound values (webhook secrets...).
+    engine = create_engine(url, hide_parameters=True, connect_args={"check_same_thread": False,
                                               "timeout": busy_timeout_ms / 1000})
 
     @event.listens_for(engine, "connect")
@@ -56,9 +63,11 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000) -> Engine:
 class Database:
     """The engine and session factory of one service instance."""
 
-    def __init__(self, url: str, *, busy_timeout_ms: int = 30_000) -> None:
+    def __init__(self, url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 5,
+                 max_overflow: int = 10) -> None:
         self.url = url
-        self.engine = make_engine(url, busy_timeout_ms=busy_timeout_ms)
+        self.engine = make_engine(url, busy_timeout_ms=busy_timeout_ms, pool_size=pool_size,
+                                  max_overflow=max_overflow)
         self.sessions = sessionmaker(self.engine, expire_on_commit=False)
 
     @property

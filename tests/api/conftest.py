@@ -1,18 +1,13 @@
 """Fixtures for the HTTP contract tests: an app on a fresh database per test.
 
-``database_url`` is parametrised over the backends named in ``INRUSH_TEST_BACKENDS`` (default
-``sqlite,postgres``). The PostgreSQL case creates its own database on the server at
-``INRUSH_TEST_POSTGRES_URL`` (default postgresql+psycopg://postgres@127.0.0.1:5432/test) and
-drops it afterwards; it is skipped with the reason when the server cannot be reached.
+The database comes from ``database_url`` (tests/conftest.py), parametrised over SQLite and
+PostgreSQL, so every test here runs on both backends.
 """
 
 from __future__ import annotations
 
-import functools
-import os
 import secrets
 from collections.abc import Callable, Iterator
-from pathlib import Path
 from typing import Any
 
 import pytest
@@ -20,7 +15,6 @@ from apihelpers import EXPERIMENT
 from fastapi import FastAPI
 from fastapi.testclient import TestClient
 from sqlalchemy import func, select
-from sqlalchemy.engine import make_url
 
 from service.app import create_app
 from service.db import load_models, models
@@ -28,57 +22,6 @@ from service.settings import Settings
 from service.tokens import Scope, create_token
 
 ADMIN_TOKEN = "test-admin-" + secrets.token_hex(8)
-POSTGRES_URL = os.environ.get("INRUSH_TEST_POSTGRES_URL",
-                              "postgresql+psycopg://postgres@127.0.0.1:5432/test")
-
-
-def _backends() -> list[Any]:
-    wanted = os.environ.get("INRUSH_TEST_BACKENDS", "sqlite,postgres").split(",")
-    params = []
-    for name in (w.strip() for w in wanted if w.strip()):
-        marks = [pytest.mark.postgres] if name == "postgres" else []
-        params.append(pytest.param(name, marks=marks, id=name))
-    return params
-
-
-@functools.cache
-def _postgres_problem() -> str | None:
-    """Why PostgreSQL cannot be used, or ``None`` when it can."""
-    try:
-        import psycopg
-    except ImportError:
-        return "psycopg is not installed"
-    try:
-        with psycopg.connect(_libpq(POSTGRES_URL), connect_timeout=3) as connection:
-            connection.execute("SELECT 1")
-    except psycopg.Error as error:
-        return f"PostgreSQL at {POSTGRES_URL} is unreachable: {error}".strip()
-    return None
-
-
-def _libpq(url: str) -> str:
-    return make_url(url).set(drivername="postgresql").render_as_string(hide_password=False)
-
-
-@pytest.fixture(params=_backends())
-def database_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'inrush.db'}"
-        return
-    problem = _postgres_problem()
-    if problem:
-        pytest.skip(problem)
-    import psycopg
-
-    name = f"inrush_test_{secrets.token_hex(6)}"
-    admin = _libpq(POSTGRES_URL)
-    with psycopg.connect(admin, autocommit=True) as connection:
-        connection.execute(f'CREATE DATABASE "{name}"')
-    try:
-        yield make_url(POSTGRES_URL).set(database=name).render_as_string(hide_password=False)
-    finally:
-        with psycopg.connect(admin, autocommit=True) as connection:
-            connection.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
 
 
 @pytest.fixture
