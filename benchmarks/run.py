@@ -254,8 +254,10 @@ def write_markdown(results: dict[str, Any], path: Path) -> None:
                          f"{_fmt(x.get('abs_bias_over_se'))} | {_fmt(x.get('mean_bias'))} | "
                          f"{_fmt(x.get('mean_se'))} |")
         lines.append("")
-        lines.append(f"Repetitions {rw.get('runs')}, failed {rw.get('errors')}; adjusted coverage "
-                     f"95% interval {_fmt(rw.get('adjusted', {}).get('coverage_wilson95'))}.")
+        interval = rw.get("adjusted", {}).get("coverage_wilson95")
+        shown = f"{interval[0]:.3f}-{interval[1]:.3f}" if interval else "—"
+        lines.append(f"Repetitions {rw.get('runs')}, failed {rw.get('errors')}; Wilson 95% "
+                     f"interval of the adjusted coverage {shown}.")
         un = rw.get("unlabeled_inflow", {})
         if un.get("adjusted"):
             lines += ["", "Caution, same experiments with the inflow unlabelled (mixed into "
@@ -282,7 +284,39 @@ def write_markdown(results: dict[str, Any], path: Path) -> None:
     hp = details.get("http", {})
     if hp:
         lines += ["", "## HTTP service", ""]
-        lines += [f"- {k}: {_fmt(v)}" for k, v in hp.items()]
+        if "not_run" in hp:
+            lines.append(f"Not run: {hp['not_run']}.")
+        else:
+            lines.append(f"`inrush serve` with one worker on 127.0.0.1, database "
+                         f"{hp.get('database')}; load generator wrk: {hp.get('wrk')}.")
+            ingest = hp.get("ingest")
+            if ingest:
+                lines += ["", f"Ingest: {ingest['rows_per_request']:,} rows per PUT "
+                          f"({ingest['csv_bytes']:,} bytes as CSV), the whole request timed "
+                          "(validation, upsert, the diagnosis it re-runs).", "",
+                          "| format | rows/s (median) | fresh uploads (s) | re-sent uploads (s) |",
+                          "|---|---|---|---|"]
+                for fmt in ("csv", "json"):
+                    x = ingest[fmt]
+                    lines.append(f"| {fmt} | {x['rows_per_s_median']:,.0f} | "
+                                 + ", ".join(f"{t:.2f}" for t in x["insert_s"]) + " | "
+                                 + ", ".join(f"{t:.2f}" for t in x["replace_s"]) + " |")
+            poll = hp.get("poll")
+            if poll:
+                lines += ["", f"Polling: conditional GET of the diagnosis (answered 304), wrk "
+                          f"with {poll['threads']} thread and {poll['connections']} connections "
+                          f"for {poll['seconds']} s: {poll['requests_per_s']:,.0f} requests/s, "
+                          f"latency p50 {poll['p50_ms']} ms, p90 {poll['p90_ms']} ms, p99 "
+                          f"{poll['p99_ms']} ms; {poll['requests']:,} requests, "
+                          f"{poll['non_2xx_3xx']} not 2xx/3xx."]
+            again = hp.get("reanalysis")
+            if again:
+                lines += ["", f"Re-analysis: {again['experiments']:,} experiments of "
+                          f"{again['rows_per_experiment']}: every one re-diagnosed in "
+                          f"{again['seconds']:.1f} s (4 client connections; setting them up "
+                          f"took {again['setup_seconds']:.1f} s); statuses "
+                          f"{_fmt(again['statuses'])}."
+                          + (f" {again['note']}." if again.get("note") else "")]
     notes = results.get("notes") or []
     if notes:
         lines += ["", "## Notes on goals missed or not run", ""] + [f"- {n}" for n in notes]
@@ -300,11 +334,24 @@ def main(argv: Sequence[str] | None = None) -> int:
     mode.add_argument("--quick", action="store_true", help="small counts, smoke test")
     mode.add_argument("--full", action="store_true", help="the recorded benchmark")
     parser.add_argument("--jobs", type=int, default=2, help="processes for detection")
+    parser.add_argument("--markdown-only", action="store_true",
+                        help="with --full: rewrite RESULTS.md and the plot from results.json "
+                             "without measuring anything")
     parser.add_argument("--only", nargs="*", default=None,
                         choices=["detection", "reweight", "speed", "http"],
                         help="run some sections (results then go to results-partial.json)")
     args = parser.parse_args(argv)
     full = bool(args.full)
+    if args.markdown_only:
+        if not full:
+            parser.error("--markdown-only goes with --full")
+        recorded = json.loads(RESULTS_JSON.read_text())
+        write_markdown(recorded, RESULTS_MD)
+        if "detection" in recorded["details"]:
+            plot_power_curve(recorded["details"]["detection"], POWER_CURVE_PNG)
+        print(f"rewrote {RESULTS_MD.relative_to(HERE.parent)} from "
+              f"{RESULTS_JSON.relative_to(HERE.parent)}")
+        return 0
     sections = args.only or ["detection", "reweight", "speed", "http"]
     began = time.perf_counter()
 

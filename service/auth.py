@@ -32,6 +32,7 @@ def require(scope: Scope) -> Callable[..., Principal]:
         if principal is None:
             raise ProblemError(401, "The bearer token is unknown or revoked.", headers={
                 "WWW-Authenticate": f'{_REALM}, error="invalid_token"'})
+        request.state.principal = principal.name  # the access log names who (never the token)
         if principal.scope < scope:
             raise ProblemError(
                 403, f"The token {principal.name!r} has scope {principal.scope.name}; this "

@@ -11,7 +11,7 @@ from starlette.middleware.cors import CORSMiddleware
 ALLOWED_METHODS = ["GET", "HEAD", "POST", "PUT", "PATCH"]
 ALLOWED_HEADERS = ["Authorization", "Content-Type", "Accept", "If-None-Match"]
 # Headers a browser script may read: what pollers and paginators need.
-EXPOSED_HEADERS = ["ETag", "Location", "X-Inrush-Diagnosis-Version"]
+EXPOSED_HEADERS = ["ETag", "Location", "X-Inrush-Diagnosis-Version", "X-Request-ID"]
 
 
 class CorsSettings(BaseSettings):

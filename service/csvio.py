@@ -30,6 +30,10 @@ def read_observations_csv(source: str | bytes | Path) -> pd.DataFrame:
     text = source.lstrip("\ufeff")
     if not text.strip():
         raise InputError([Problem("body", "the CSV is empty: a header row and data are needed")])
+    if "\x00" in text:  # no database text column can hold U+0000
+        line = text.count("\n", 0, text.index("\x00")) + 1
+        raise InputError([Problem("body", f"line {line} contains a NUL character (U+0000); "
+                                  "is the file UTF-16 or binary?")])
     reader = csv.reader(io.StringIO(text, newline=""), strict=True)
     try:
         header = [name.strip() for name in next(reader)]

@@ -188,9 +188,10 @@ class StrictJSONMiddleware:
             try:
                 strict_loads(body)
             except JSONBodyError as error:
+                detail = (f"The request was rejected: {error.message}" if error.status == 422
+                          else f"{error.message[:1].upper()}{error.message[1:]}")
                 await _answer(scope, receive, send, error.status,
-                              f"{error.message[:1].upper()}{error.message[1:]}; nothing was "
-                              "written.", error)
+                              f"{detail}; nothing was written.", error)
                 return
         await self.app(scope, _replay(body, receive), send)
 

@@ -8,19 +8,22 @@ Every problem has ``type`` (an absolute URI under ``/problems/``, which serves i
 from __future__ import annotations
 
 import logging
+import re
 from collections.abc import Iterable, Mapping
 from typing import Any
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
-from sqlalchemy.exc import OperationalError
+from sqlalchemy.exc import DBAPIError, DisconnectionError, InterfaceError, OperationalError
+from sqlalchemy.exc import TimeoutError as PoolTimeoutError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from detectors.errors import InputError, Problem, UndefinedEstimateError
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 MAX_LISTED_ERRORS = 1000
+RETRY_AFTER = "5"  # seconds a client should wait after a 503
 logger = logging.getLogger("inrush.service")
 
 # slug -> (title, what it means and what to do); served at /problems/{slug}.
@@ -181,7 +184,25 @@ def _http_handler(request: Request, exc: Exception) -> JSONResponse:
         detail = f"No resource at {request.url.path}."
     elif exc.status_code == 405:
         detail = f"{request.method} is not allowed on {request.url.path}."
+        # RFC 9110 15.5.6: Allow lists every method of the resource, not only those of the
+        # first route whose path matched.
+        methods = {m.strip() for m in (exc.headers or {}).get("Allow", "").split(",")
+                   if m.strip()} | allowed_methods(request.app, request.url.path)
+        return problem_response(request, 405, detail, headers={
+            **(exc.headers or {}), "Allow": ", ".join(sorted(methods))})
     return problem_response(request, exc.status_code, detail, headers=exc.headers)
+
+
+def allowed_methods(app: FastAPI, path: str) -> set[str]:
+    """The methods the OpenAPI document lists for ``path`` (HEAD wherever GET is)."""
+    methods: set[str] = set()
+    for template, operations in app.openapi().get("paths", {}).items():
+        pattern = "^" + re.sub(r"\\\{[^}]+\\\}", "[^/]+", re.escape(template)) + "$"
+        if re.match(pattern, path):
+            methods.update(m.upper() for m in operations if m.isalpha())
+    if "GET" in methods:
+        methods.add("HEAD")
+    return methods
 
 
 def _problem_handler(request: Request, exc: Exception) -> JSONResponse:
@@ -195,12 +216,26 @@ def _input_handler(request: Request, exc: Exception) -> JSONResponse:
     return input_error_response(request, exc)
 
 
+def database_unavailable(exc: BaseException) -> bool:
+    """Whether ``exc`` says the database cannot be used right now (retrying may succeed):
+    unreachable, refusing connections, locked past the busy timeout, a dropped connection,
+    or no pooled connection free in time."""
+    if isinstance(exc, OperationalError | InterfaceError | DisconnectionError
+                  | PoolTimeoutError):
+        return True
+    return isinstance(exc, DBAPIError) and bool(exc.connection_invalidated)
+
+
 def _database_handler(request: Request, exc: Exception) -> JSONResponse:
-    # Unreachable, locked past the busy timeout, or failed over: the request did nothing and
-    # can be retried.
-    logger.error("database error on %s %s: %s", request.method, request.url.path, exc)
+    if not database_unavailable(exc):
+        return _unexpected_handler(request, exc)
+    # The request did nothing and can be retried. Only the driver's message is logged: the
+    # statement is noise and its parameters may hold secrets (the engine hides them anyway).
+    cause = getattr(exc, "orig", None) or exc
+    logger.error("database unavailable on %s %s: %s: %s", request.method, request.url.path,
+                 type(cause).__name__, str(cause).strip().splitlines()[0] if str(cause) else "")
     return problem_response(request, 503, "The database is unavailable or busy; nothing was "
-                            "written. Retry shortly.", headers={"Retry-After": "5"})
+                            "written. Retry shortly.", headers={"Retry-After": RETRY_AFTER})
 
 
 def _unexpected_handler(request: Request, exc: Exception) -> JSONResponse:
@@ -215,5 +250,6 @@ def install_problem_handlers(app: FastAPI) -> None:
     app.add_exception_handler(StarletteHTTPException, _http_handler)
     app.add_exception_handler(ProblemError, _problem_handler)
     app.add_exception_handler(InputError, _input_handler)
-    app.add_exception_handler(OperationalError, _database_handler)
+    for unavailable in (DBAPIError, DisconnectionError, PoolTimeoutError):
+        app.add_exception_handler(unavailable, _database_handler)
     app.add_exception_handler(Exception, _unexpected_handler)

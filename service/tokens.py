@@ -86,7 +86,8 @@ def create_token(session: Session, scope: Scope, name: str | None = None
 
 def find_token(session: Session, ident: str) -> ApiToken | None:
     """A token by numeric id or by name."""
-    if ident.isdigit():
+    # ASCII digits only ("²".isdigit() is true) and within the INTEGER id column.
+    if ident.isascii() and ident.isdigit() and int(ident) <= 2**31 - 1:
         found = session.get(ApiToken, int(ident))
         if found is not None:
             return found

@@ -80,7 +80,7 @@ def run_serve(args: argparse.Namespace) -> int:
         database.dispose()
     with _metrics_directory(args.workers):
         uvicorn.run("service.app:create_app", factory=True, host=args.host, port=args.port,
-                    workers=args.workers, log_level=args.log_level,
+                    workers=args.workers, log_level=args.log_level, access_log=False,
                     log_config=_log_config(args.log_level))
     return EXIT_OK
 
@@ -115,14 +115,25 @@ def _metrics_directory(workers: int) -> Iterator[None]:
 
 
 def _log_config(level: str) -> dict[str, object]:
-    """Uvicorn's logging setup plus the service's own ``inrush`` loggers on the same stream."""
+    """Uvicorn's logging setup plus the service's own loggers as JSON lines: ``inrush`` on
+    stderr, the access log ``inrush.access`` on stdout. Uvicorn's own access log is off: it
+    would repeat each request as text, query string (``?token=``) included."""
     import copy
 
     from uvicorn.config import LOGGING_CONFIG
 
     config = copy.deepcopy(LOGGING_CONFIG)
-    config["loggers"]["inrush"] = {"handlers": ["default"], "level": level.upper(),
+    config["formatters"]["json"] = {"()": "service.access_log.JsonFormatter"}
+    config["handlers"]["json_stderr"] = {"formatter": "json", "class": "logging.StreamHandler",
+                                         "stream": "ext://sys.stderr"}
+    config["handlers"]["json_stdout"] = {"formatter": "json", "class": "logging.StreamHandler",
+                                         "stream": "ext://sys.stdout"}
+    config["loggers"]["inrush"] = {"handlers": ["json_stderr"], "level": level.upper(),
                                    "propagate": False}
+    config["loggers"]["inrush.access"] = {"handlers": ["json_stdout"], "level": level.upper(),
+                                          "propagate": False}
+    config["loggers"]["uvicorn.access"] = {"handlers": [], "level": "WARNING",
+                                           "propagate": False}
     return config
 
 

@@ -38,8 +38,9 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 5,
     if database and database != ":memory:" and not database.startswith("file:"):
         Path(database).expanduser().resolve().parent.mkdir(parents=True, exist_ok=True)
     # hide_parameters: error messages and logs never show bound values (webhook secrets...).
-    engine = create_engine(url, hide_parameters=True, connect_args={"check_same_thread": False,
-                                              "timeout": busy_timeout_ms / 1000})
+    engine = create_engine(url, hide_parameters=True,
+                           connect_args={"check_same_thread": False,
+                                         "timeout": busy_timeout_ms / 1000})
 
     @event.listens_for(engine, "connect")
     def _configure(dbapi_connection: Any, _record: Any) -> None:

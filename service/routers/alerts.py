@@ -25,7 +25,7 @@ from ..schemas.alerts import (
 )
 from ..schemas.common import problem_responses
 from ..tokens import Principal
-from .common import base_url
+from .common import MAX_BIGINT, base_url
 
 router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
 
@@ -60,7 +60,7 @@ def list_alerts(request: Request, session: Session = Depends(get_session),
     if since is not None:
         query = query.where(Alert.opened_at >= _parse_since(since))
     if cursor is not None:
-        if not cursor.isdigit():
+        if not (cursor.isascii() and cursor.isdigit()) or int(cursor) > MAX_BIGINT:
             raise _query_problem("cursor", "invalid cursor")
         query = query.where(Alert.id < int(cursor))
     found = list(session.scalars(query))
@@ -135,6 +135,8 @@ def _transition(request: Request, session: Session, alert_id: int, principal: Pr
 
 
 def _get(session: Session, alert_id: int, *, for_update: bool = False) -> Alert:
+    if alert_id > MAX_BIGINT:
+        raise ProblemError(404, f"There is no alert {alert_id}.")
     query = select(Alert).where(Alert.id == alert_id).options(selectinload(Alert.events))
     if for_update:
         query = query.with_for_update(of=Alert)
@@ -151,7 +153,11 @@ def _parse_since(text: str) -> dt.datetime:
     except ValueError:
         raise _query_problem("since", "must be an ISO date (YYYY-MM-DD) or datetime "
                              "(YYYY-MM-DDTHH:MM:SS[+HH:MM])") from None
-    return value.replace(tzinfo=dt.UTC) if value.tzinfo is None else value
+    try:  # the comparison runs in UTC; an offset can push year 1 or 9999 out of range
+        return (value.replace(tzinfo=dt.UTC) if value.tzinfo is None
+                else value.astimezone(dt.UTC))
+    except OverflowError:
+        raise _query_problem("since", "lies outside the years 1 to 9999 in UTC") from None
 
 
 def _query_problem(field: str, message: str) -> ProblemError:

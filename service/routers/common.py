@@ -10,6 +10,12 @@ from ..db.models import Experiment
 from ..problems import ProblemError
 from ..settings import Settings
 
+# Largest values the id columns hold on every backend: BIGINT ids (alerts, outbox rows) and
+# INTEGER ones (token ids, diagnosis versions). Larger ones cannot exist: answer 404 without
+# asking the database, which would fail on the out-of-range parameter.
+MAX_BIGINT = 2**63 - 1
+MAX_INT = 2**31 - 1
+
 
 def base_url(request: Request) -> str:
     settings: Settings = request.app.state.settings

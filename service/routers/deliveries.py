@@ -14,6 +14,7 @@ from ..problems import ProblemError
 from ..schemas.common import problem_responses
 from ..schemas.deliveries import DeliveryAttemptOut, DeliveryList, DeliveryOut
 from ..tokens import Principal
+from .common import MAX_BIGINT
 
 router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
 
@@ -23,7 +24,7 @@ router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
 def list_deliveries(alert_id: int, session: Session = Depends(get_session),
                     _: Principal = Depends(require_read)) -> DeliveryList:
     """Every notification queued for the alert, oldest first, with each delivery attempt."""
-    alert = session.get(Alert, alert_id)
+    alert = session.get(Alert, alert_id) if alert_id <= MAX_BIGINT else None
     if alert is None:
         raise ProblemError(404, f"There is no alert {alert_id}.")
     experiment = session.get(Experiment, alert.experiment_id)

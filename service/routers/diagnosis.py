@@ -19,7 +19,7 @@ from ..problems import ProblemError
 from ..schemas.common import problem_responses
 from ..schemas.diagnosis import DiagnosisDocument, SeriesDocument, SnapshotList, SnapshotOut
 from ..tokens import Principal
-from .common import get_experiment
+from .common import MAX_INT, get_experiment
 
 router = APIRouter(prefix="/v1/experiments/{experiment_id}", tags=["diagnosis"])
 
@@ -69,7 +69,8 @@ def list_diagnoses(experiment_id: str, session: Session = Depends(get_session),
 def _snapshot(session: Session, experiment_id: str, version: int | None) -> DiagnosisSnapshot:
     get_experiment(session, experiment_id)
     snapshot = (latest_snapshot(session, experiment_id) if version is None
-                else snapshot_version(session, experiment_id, version))
+                else snapshot_version(session, experiment_id, version)
+                if version <= MAX_INT else None)
     if snapshot is None:
         if version is not None:
             raise ProblemError(404, f"Experiment {experiment_id!r} has no diagnosis version "

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import base64
 import binascii
+import datetime as dt
+import re
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Query, Request, Response
@@ -23,6 +25,7 @@ from ..notify.registration import validate_webhook_url
 from ..problems import ProblemError
 from ..schemas.common import problem_responses
 from ..schemas.experiments import (
+    EXPERIMENT_ID_PATTERN,
     AllocationStep,
     DiagnosisSummary,
     ExperimentCreate,
@@ -37,6 +40,11 @@ from .common import base_url, experiment_url, get_experiment, lock_experiment
 
 router = APIRouter(prefix="/v1/experiments", tags=["experiments"])
 
+# Every day from the start is analysed on each upload, so the start must be plausible: a
+# start decades back would make one request re-diagnose tens of thousands of empty days.
+EARLIEST_START = dt.date(2000, 1, 1)
+MAX_START_AHEAD_DAYS = 366
+
 
 @router.post("", status_code=201, response_model=ExperimentOut,
              responses=problem_responses(400, 401, 403, 409, 413, 422))
@@ -44,6 +52,7 @@ def create_experiment(body: ExperimentCreate, request: Request, response: Respon
                       session: Session = Depends(get_session),
                       _: Principal = Depends(require_write)) -> ExperimentOut:
     """Create an experiment. Its id is permanent; 409 if it exists already."""
+    _check_start(body.start_date)
     steps = body.allocation or [AllocationStep.model_validate(
         {"from": body.start_date, "weights": [1.0 / len(body.arms)] * len(body.arms)})]
     allocation = _schedule(body.arms, steps, body.start_date)
@@ -200,9 +209,26 @@ def _encode_cursor(value: str) -> str:
     return base64.urlsafe_b64encode(value.encode()).decode().rstrip("=")
 
 
+def _check_start(start_date: dt.date) -> None:
+    latest = utcnow().date() + dt.timedelta(days=MAX_START_AHEAD_DAYS)
+    if start_date < EARLIEST_START:
+        message = (f"{start_date.isoformat()} is before {EARLIEST_START.isoformat()}, the "
+                   "earliest start accepted (every day from the start is analysed)")
+    elif start_date > latest:
+        message = (f"{start_date.isoformat()} is more than {MAX_START_AHEAD_DAYS} days ahead "
+                   "of today")
+    else:
+        return
+    raise InputError([Problem("start_date", message)])
+
+
 def _decode_cursor(cursor: str) -> str:
     try:
-        return base64.urlsafe_b64decode(cursor + "=" * (-len(cursor) % 4)).decode()
-    except (binascii.Error, UnicodeDecodeError):
+        decoded = base64.b64decode(cursor + "=" * (-len(cursor) % 4), altchars=b"-_",
+                                   validate=True).decode()
+    except (binascii.Error, UnicodeDecodeError, ValueError):
+        decoded = ""
+    if not re.fullmatch(EXPERIMENT_ID_PATTERN, decoded):  # cursors are experiment ids
         raise ProblemError(422, "cursor is not one this service issued.", errors=[
-            {"row": None, "field": "cursor", "message": "invalid cursor"}]) from None
+            {"row": None, "field": "cursor", "message": "invalid cursor"}])
+    return decoded

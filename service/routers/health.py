@@ -8,7 +8,7 @@ from pydantic import BaseModel
 from sqlalchemy.exc import SQLAlchemyError
 
 from ..db.session import Database
-from ..problems import logger, problem_response
+from ..problems import RETRY_AFTER, logger, problem_response
 from ..schemas.common import problem_responses
 
 router = APIRouter(tags=["health"])
@@ -28,5 +28,5 @@ def healthz(request: Request) -> JSONResponse:
     except (SQLAlchemyError, OSError) as error:
         logger.warning("health check: database unreachable: %s", error)
         return problem_response(request, 503, "The database cannot be reached.",
-                                database="unreachable")
+                                headers={"Retry-After": RETRY_AFTER}, database="unreachable")
     return JSONResponse({"status": "ok", "database": "ok"})

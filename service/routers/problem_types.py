@@ -6,6 +6,7 @@ from fastapi import APIRouter
 from pydantic import BaseModel
 
 from ..problems import PROBLEM_TYPES, ProblemError
+from ..schemas.common import problem_responses
 
 router = APIRouter(tags=["health"])
 
@@ -16,7 +17,7 @@ class ProblemType(BaseModel):
     description: str
 
 
-@router.get("/problems/{slug}", response_model=ProblemType)
+@router.get("/problems/{slug}", response_model=ProblemType, responses=problem_responses(404))
 def problem_type(slug: str) -> ProblemType:
     if slug not in PROBLEM_TYPES:
         raise ProblemError(404, f"There is no problem type {slug!r}.")

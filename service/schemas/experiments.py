@@ -5,12 +5,32 @@ from __future__ import annotations
 import datetime as dt
 from typing import Annotated, Any
 
-from pydantic import AnyHttpUrl, BaseModel, ConfigDict, Field, StringConstraints
+from pydantic import (
+    AfterValidator,
+    AnyHttpUrl,
+    BaseModel,
+    ConfigDict,
+    Field,
+    StringConstraints,
+    UrlConstraints,
+)
 
 EXPERIMENT_ID_PATTERN = r"^[a-z0-9][a-z0-9._-]{0,63}$"
 ExperimentId = Annotated[str, StringConstraints(pattern=EXPERIMENT_ID_PATTERN)]
 ArmName = Annotated[str, StringConstraints(min_length=1, max_length=64, pattern=r"^\S(.*\S)?$")]
 Title = Annotated[str, StringConstraints(min_length=1, max_length=200, strip_whitespace=True)]
+MAX_URL_LENGTH = 2048  # the webhook_url column
+
+
+def _storable_url(url: AnyHttpUrl) -> AnyHttpUrl:
+    # Normalising can lengthen a URL (percent-encoding, punycode): check what is stored.
+    if len(str(url)) > MAX_URL_LENGTH:
+        raise ValueError(f"the URL is longer than {MAX_URL_LENGTH} characters once normalised")
+    return url
+
+
+WebhookUrl = Annotated[AnyHttpUrl, UrlConstraints(max_length=MAX_URL_LENGTH),
+                       AfterValidator(_storable_url)]
 
 
 class AllocationStep(BaseModel):
@@ -28,7 +48,7 @@ class NotifyIn(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
 
-    webhook_url: AnyHttpUrl = Field(description="http(s) URL that receives alert webhooks")
+    webhook_url: WebhookUrl = Field(description="http(s) URL that receives alert webhooks")
     secret: Annotated[str, StringConstraints(min_length=8, max_length=256)] | None = Field(
         None, description="shared secret for signatures (omit on PATCH to keep the current one)")
 

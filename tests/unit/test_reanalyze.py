@@ -84,7 +84,8 @@ def _alerts(database: Database, experiment_id: str) -> list[Any]:
     with database.sessions() as session:
         return list(session.execute(select(Alert.kind, Alert.key, Alert.status,
                                            Alert.resolution_reason)
-                                    .where(Alert.experiment_id == experiment_id)))
+                                    .where(Alert.experiment_id == experiment_id)
+                                    .order_by(Alert.kind, Alert.key)))
 
 
 def test_unchanged_results_keep_every_version(database: Database,
