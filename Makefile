@@ -19,7 +19,6 @@ test: install
 
 lint: install
 	$(BIN)/ruff check detectors service tests benchmarks
-	$(BIN)/ruff format --check detectors service tests benchmarks
 
 demo: install
 	$(BIN)/inrush demo

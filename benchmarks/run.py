@@ -275,8 +275,8 @@ def write_markdown(results: dict[str, Any], path: Path) -> None:
     sp = details.get("speed", {})
     if sp:
         lines += ["", "## Speed", "", f"Workload {_fmt(sp['workload'])}.",
-                  f"Diagnosis {_fmt(sp['diagnosis_ms'])} ms; straightforward loop "
-                  f"{_fmt(sp['baseline_ms'])} ms; the loop agrees with Inrush: "
+                  f"Diagnosis, ms: {_fmt(sp['diagnosis_ms'])}. Straightforward loop, ms: "
+                  f"{_fmt(sp['baseline_ms'])}. The loop agrees with Inrush: "
                   f"{_fmt(sp['baseline_agrees'])}."]
         if "diagnosis_profile" in sp:
             lines += ["", "Profile of `diagnose` (5 calls, cumulative):", "", "```",

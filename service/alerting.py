@@ -199,15 +199,15 @@ def _why_gone(alert: Alert, diagnosis: Diagnosis | None) -> str:
         day = next((d for d in diagnosis.flagged_days if d.date.isoformat() == alert.key), None)
         if day is not None:
             return (f"{alert.key} is now only at the {day.severity} level (Holm-adjusted "
-                    f"p = {_p(day.p_value)}, alert level p < {alpha:g})")
+                    f"p = {_p(day.p_value)}, alert level p < {diagnosis.config.scan_alpha:g})")
         return (f"no window of days containing {alert.key} reaches the alert level "
-                f"p < {alpha:g} any more")
+                f"p < {diagnosis.config.scan_alpha:g} any more")
     if alert.kind == "skewed_source":
         source = next((s for s in diagnosis.sources if s.source == alert.key), None)
         if source is None:
             return f"source {alert.key} has no units in the stored data any more"
         return (f"source {alert.key} follows the allocation at the alert level (Holm-adjusted "
-                f"p = {_p(source.adjusted_p_value)})")
+                f"anytime-valid p = {_p(source.adjusted_sequential_p_value)})")
     if alert.kind == "share_changepoint":
         return f"no change of the arm shares is detected on {alert.key} any more"
     if alert.kind == "engagement_changepoint":

@@ -74,6 +74,9 @@ def write_observations_csv(rows: list[dict[str, object]]) -> str:
     header += [f"{name}.{stat}" for name in names for stat in ("n", "sum", "sum_sq")]
     buffer = io.StringIO(newline="")
     writer = csv.writer(buffer, lineterminator="\n")
+    # QUOTE_MINIMAL quotes "\n" (the line terminator) but not a lone "\r", which readers take
+    # for a line end: rows holding one are written fully quoted.
+    quoting_writer = csv.writer(buffer, lineterminator="\n", quoting=csv.QUOTE_ALL)
     writer.writerow(header)
     for row in rows:
         metrics: dict[str, dict[str, object]] = row.get("metrics") or {}  # type: ignore[assignment]
@@ -82,7 +85,8 @@ def write_observations_csv(rows: list[dict[str, object]]) -> str:
             stats = metrics.get(name)
             cells += ([repr_number(stats[s]) for s in ("n", "sum", "sum_sq")] if stats
                       else ["", "", ""])
-        writer.writerow(cells)
+        carriage_return = any(isinstance(c, str) and "\r" in c for c in cells)
+        (quoting_writer if carriage_return else writer).writerow(cells)
     return buffer.getvalue()
 
 

@@ -79,15 +79,17 @@ def sensitivity_document(traffic: ArmTraffic, *, days: int = DEFAULT_SENSITIVITY
     the last day of traffic (``as_of``). Thresholds default to :class:`DiagnosisConfig`'s."""
     defaults = DiagnosisConfig()
     result = sensitivity(traffic.counts, traffic.planned, traffic.arms, days=days,
-                         alpha=defaults.alpha if alpha is None else alpha,
+                         alpha=defaults.scan_alpha if alpha is None else alpha,
                          max_window=defaults.max_window if max_window is None else max_window)
     return json_safe({"as_of": traffic.last_date.isoformat(), **result.to_dict()})
 
 
 def thresholds_of(document: dict[str, Any] | None) -> tuple[float | None, int | None]:
-    """``(alpha, max_window)`` a stored diagnosis document was computed with, if it says."""
+    """``(scan alpha, max_window)`` a stored diagnosis document was computed with, if it says:
+    the window scan is the test an inflow of a few days must pass."""
     thresholds = (document or {}).get("thresholds") or {}
-    return thresholds.get("alpha"), thresholds.get("max_window_days")
+    return (thresholds.get("scan_alpha", thresholds.get("alpha")),
+            thresholds.get("max_window_days"))
 
 
 def _trimmed(arms: tuple[str, ...], dates: np.ndarray, counts: np.ndarray,

@@ -72,7 +72,7 @@ def run_analyze(args: argparse.Namespace) -> int:
         traffic = ArmTraffic.from_table(table, schedule)
         if traffic is not None:  # the smallest inflow over 2 days these thresholds would flag
             document["sensitivity"] = sensitivity_document(
-                traffic, days=DEFAULT_SENSITIVITY_DAYS, alpha=result.config.alpha,
+                traffic, days=DEFAULT_SENSITIVITY_DAYS, alpha=result.config.scan_alpha,
                 max_window=result.config.max_window)
     except InputError as error:
         return _bad_input(error)

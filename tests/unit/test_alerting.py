@@ -29,7 +29,8 @@ def stand_in(*findings: Finding) -> Any:
     return SimpleNamespace(
         findings=lambda: findings, config=DiagnosisConfig(),
         srm=SimpleNamespace(p_value=0.2, sequential_p_value=0.4),
-        flagged_days=(), sources=(SimpleNamespace(source="newsletter", adjusted_p_value=0.3),))
+        flagged_days=(), sources=(SimpleNamespace(source="newsletter", adjusted_p_value=0.3,
+                                                         adjusted_sequential_p_value=0.3),))
 
 
 def day(date: str, title: str = "cards got +448 units over plan") -> Finding:
@@ -89,7 +90,7 @@ def test_a_vanished_finding_is_resolved_by_the_service_naming_the_cause(
     assert (alert.status, alert.resolved_by, alert.active) == ("resolved", "inrush", False)
     assert alert.resolution_reason == (
         f"{cause} no longer supports it: no window of days containing 2026-11-09 reaches the "
-        "alert level p < 0.0005 any more")
+        "alert level p < 0.002 any more")
     assert stored(session)[("skewed_source", "newsletter")].status == "open"
 
 
@@ -99,7 +100,7 @@ def test_reasons_describe_what_the_new_diagnosis_says(session: Session) -> None:
     alerting.sync_alerts(session, experiment(session), stand_in())
     reasons = {k: a.resolution_reason for k, a in stored(session).items()}
     assert "chi-square p = 0.2" in reasons[("srm", "overall")]
-    assert "Holm-adjusted p = 0.3" in reasons[("skewed_source", "newsletter")]
+    assert "Holm-adjusted anytime-valid p = 0.3" in reasons[("skewed_source", "newsletter")]
     alerting.sync_alerts(session, experiment(session), stand_in(srm))
     alerting.sync_alerts(session, experiment(session), None)
     assert "no units" in stored(session)[("srm", "overall")].resolution_reason
