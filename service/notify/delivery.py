@@ -65,8 +65,11 @@ def deliver(client: httpx.Client, url: str, secret: str | None, event_id: str,
         return result(False, error=f"target refused: {error}")
     stamp = int(time.time()) if timestamp is None else int(timestamp)
     request_url, host_headers, extensions = pinned_url(target)
-    headers = {**signing.headers(secret, event_id, stamp, body), **host_headers,
-               "content-type": "application/json"}
+    try:
+        signed = signing.headers(secret, event_id, stamp, body)
+    except signing.SignatureError as error:  # a malformed stored secret: retrying cannot help
+        return result(False, permanent=True, error=f"cannot sign the message: {error}")
+    headers = {**signed, **host_headers, "content-type": "application/json"}
     request = client.build_request("POST", request_url, content=body, headers=headers,
                                    extensions=extensions)
     deadline = started + timeout_seconds

@@ -15,6 +15,8 @@ from pydantic import (
     UrlConstraints,
 )
 
+from ..notify.signing import SignatureError, secret_key
+
 EXPERIMENT_ID_PATTERN = r"^[a-z0-9][a-z0-9._-]{0,63}$"
 ExperimentId = Annotated[str, StringConstraints(pattern=EXPERIMENT_ID_PATTERN)]
 ArmName = Annotated[str, StringConstraints(min_length=1, max_length=64, pattern=r"^\S(.*\S)?$")]
@@ -33,6 +35,19 @@ WebhookUrl = Annotated[AnyHttpUrl, UrlConstraints(max_length=MAX_URL_LENGTH),
                        AfterValidator(_storable_url)]
 
 
+def _signing_secret(secret: str) -> str:
+    # A "whsec_" secret whose key is not base64 would make every delivery fail to sign.
+    try:
+        secret_key(secret)
+    except SignatureError as error:
+        raise ValueError(str(error)) from None
+    return secret
+
+
+WebhookSecret = Annotated[str, StringConstraints(min_length=8, max_length=256),
+                          AfterValidator(_signing_secret)]
+
+
 class AllocationStep(BaseModel):
     """Weights in force from ``from`` (inclusive) until the next step."""
 
@@ -49,8 +64,9 @@ class NotifyIn(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     webhook_url: WebhookUrl = Field(description="http(s) URL that receives alert webhooks")
-    secret: Annotated[str, StringConstraints(min_length=8, max_length=256)] | None = Field(
-        None, description="shared secret for signatures (omit on PATCH to keep the current one)")
+    secret: WebhookSecret | None = Field(
+        None, description="shared secret for signatures (omit on PATCH to keep the current one); "
+                          "whsec_<base64 key> or any other text")
 
 
 class NotifyOut(BaseModel):

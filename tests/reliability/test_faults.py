@@ -142,7 +142,7 @@ def test_webhook_receiver_outage_ends_with_every_notification_delivered(
         client.headers["Authorization"] = f"Bearer {ADMIN_TOKEN}"
         created = client.post("/v1/experiments", json={
             **EXPERIMENT, "notify": {"webhook_url": receiver.url,
-                                     "secret": "whsec_larkspur-trails-demo"}})
+                                     "secret": "larkspur-trails-shared-secret"}})
         assert created.status_code == 201, created.text
         written = client.put(f"/v1/experiments/{EXPERIMENT['id']}/observations",
                              content=DEMO_CSV.read_bytes(), headers={"Content-Type": "text/csv"})
