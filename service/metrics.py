@@ -212,6 +212,8 @@ def metrics(request: Request) -> Response:
 def install_metrics(app: FastAPI, settings: MetricsSettings | None = None) -> None:
     """Add the request-metrics middleware and ``GET /metrics`` to ``app``."""
     settings = settings or MetricsSettings()
-    app.state.metrics_token = settings.metrics_token
+    token = settings.metrics_token
+    # An empty INRUSH_METRICS_TOKEN (e.g. a blank compose variable) means "no token".
+    app.state.metrics_token = token if token and token.get_secret_value() else None
     app.add_middleware(RequestMetricsMiddleware)
     app.include_router(router)

@@ -26,7 +26,7 @@ def direct(days: int) -> dict[str, Any]:
     schedule = AllocationSchedule.constant(scenario.ARMS, [0.5, 0.5], scenario.START)
     config = DiagnosisConfig()
     result = sensitivity(table.daily_totals, schedule.weights_on(table.dates), scenario.ARMS,
-                         days=days, alpha=config.alpha, max_window=config.max_window)
+                         days=days, alpha=config.scan_alpha, max_window=config.max_window)
     return json.loads(json.dumps(result.to_dict()))
 
 
