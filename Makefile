@@ -31,6 +31,7 @@ openapi: install
 
 bench: install
 	$(BIN)/python -m benchmarks.run --full
+	$(BIN)/python -m benchmarks.sensitivity_check
 
 bench-quick: install
 	$(BIN)/python -m benchmarks.run --quick

@@ -1,0 +1,120 @@
+"""Stated vs simulated detection rate of the sensitivity figure.
+
+``detectors.sensitivity`` states, analytically, the smallest one-arm inflow over K days that the
+window scan flags with 80% probability. Here each stated size is injected into simulated traffic
+(Poisson daily totals, multinomial assignment) and the real scan (``detectors.srm.scan_windows``
+at the diagnosis' scan level) is run; the simulated detection rate should be about 0.8 (the
+figure counts only the window that matches the inflow, so it is slightly conservative).
+
+``python -m benchmarks.sensitivity_check`` rewrites its section of RESULTS.md and the
+``sensitivity.*`` figures in results.json.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from detectors import DiagnosisConfig
+from detectors.sensitivity import sensitivity
+from detectors.srm import scan_windows
+
+HERE = Path(__file__).parent
+START, END = "<!-- sensitivity:start -->", "<!-- sensitivity:end -->"
+
+
+@dataclass(frozen=True)
+class Case:
+    name: str
+    weights: tuple[float, ...]
+    units_per_day: int
+    inflow_days: int
+    arm: int
+
+
+CASES = (
+    Case("2 arms 50/50, 10,000/day, 1-day inflow", (0.5, 0.5), 10_000, 1, 1),
+    Case("2 arms 50/50, 10,000/day, 2-day inflow", (0.5, 0.5), 10_000, 2, 1),
+    Case("2 arms 50/50, 10,000/day, 3-day inflow", (0.5, 0.5), 10_000, 3, 1),
+    Case("2 arms 90/10, 10,000/day, 2-day inflow into the 10% arm", (0.9, 0.1), 10_000, 2, 1),
+    Case("3 arms equal, 6,000/day, 2-day inflow", (1 / 3, 1 / 3, 1 / 3), 6_000, 2, 2),
+)
+
+
+def simulate_rate(case: Case, inflow: float, *, days: int = 28, reps: int = 1000,
+                  seed: int = 7) -> float:
+    rng = np.random.default_rng(seed)
+    config = DiagnosisConfig()
+    weights = np.array(case.weights)
+    planned = np.tile(weights, (days, 1))
+    hits = 0
+    for _ in range(reps):
+        totals = rng.poisson(case.units_per_day, days)
+        counts = np.array([rng.multinomial(n, weights) for n in totals], dtype=float)
+        inflow_start = days - case.inflow_days
+        counts[inflow_start:, case.arm] += rng.poisson(inflow, case.inflow_days)
+        scan = scan_windows(counts, planned, max_window=config.max_window,
+                            watch_alpha=config.watch_alpha)
+        hits += any(w.adjusted_p_value < config.scan_alpha and w.stop > inflow_start
+                    for w in scan.selected)
+    return hits / reps
+
+
+def run(reps: int = 1000) -> list[dict[str, object]]:
+    config = DiagnosisConfig()
+    rows = []
+    for case in CASES:
+        weights = np.array(case.weights)
+        baseline = np.tile(weights * case.units_per_day, (28, 1))
+        arms = [f"arm{i}" for i in range(len(weights))]
+        stated = sensitivity(baseline, np.tile(weights, (28, 1)), arms, days=case.inflow_days,
+                             alpha=config.scan_alpha, max_window=config.max_window)
+        size = stated.arms[case.arm].units_per_day
+        rows.append({
+            "case": case.name, "stated_units_per_day": round(size, 1),
+            "stated_share_of_arm_traffic": round(stated.arms[case.arm].share_of_arm_traffic, 4),
+            "stated_power": stated.power,
+            "simulated_rate": simulate_rate(case, size, reps=reps),
+            "simulated_rate_at_half_size": simulate_rate(case, size / 2, reps=reps),
+            "reps": reps,
+        })
+    return rows
+
+
+def write(rows: list[dict[str, object]]) -> None:
+    lines = [START, "## Sensitivity: stated vs simulated detection rate", "",
+             "Command: `python -m benchmarks.sensitivity_check`. Stated size from "
+             "`detectors.sensitivity` (80% power, scan level and window of `DiagnosisConfig`); "
+             "simulated rate of the real window scan with that inflow injected on the last days "
+             "of a 28-day experiment.", "",
+             "| case | stated units/day | share of arm traffic | simulated rate | at half size |",
+             "|---|---|---|---|---|"]
+    for row in rows:
+        lines.append(f"| {row['case']} | {row['stated_units_per_day']:,} | "
+                     f"{100 * float(row['stated_share_of_arm_traffic']):.1f}% | "  # type: ignore[arg-type]
+                     f"{row['simulated_rate']:.3f} | {row['simulated_rate_at_half_size']:.3f} |")
+    lines += ["", f"{rows[0]['reps']} simulated experiments per row.", END]
+    results_md = HERE / "RESULTS.md"
+    text = results_md.read_text() if results_md.exists() else "# Benchmark results\n"
+    section = "\n".join(lines)
+    if START in text:
+        text = re.sub(re.escape(START) + ".*?" + re.escape(END), lambda _: section, text,
+                      flags=re.S)
+    else:
+        text = text.rstrip() + "\n\n" + section + "\n"
+    results_md.write_text(text)
+    results_json = HERE / "results.json"
+    figures = json.loads(results_json.read_text()) if results_json.exists() else {}
+    figures["sensitivity.stated_vs_simulated"] = rows
+    results_json.write_text(json.dumps(figures, indent=2) + "\n")
+
+
+if __name__ == "__main__":
+    table = run()
+    write(table)
+    for item in table:
+        print(item)
