@@ -89,6 +89,11 @@ def bad_string(text: str) -> str | None:
     return None
 
 
+def _printable(text: str) -> str:
+    """``text`` safe to echo in an answer (lone surrogates and NUL as escapes)."""
+    return text.encode("utf-8", "backslashreplace").decode("utf-8").replace("\x00", "\\x00")
+
+
 def find_bad_string(document: Any) -> tuple[tuple[PathItem, ...], str] | None:
     """The path of the first string (member name or value) that cannot be stored, and why.
 
@@ -105,8 +110,7 @@ def find_bad_string(document: Any) -> tuple[tuple[PathItem, ...], str] | None:
             for name, item in value.items():
                 reason = bad_string(name)
                 if reason is not None:
-                    return (*path, name.encode("utf-8", "backslashreplace").decode()), \
-                        f"member name {reason}"
+                    return (*path, _printable(name)), f"member name {reason}"
                 stack.append(((*path, name), item))
         elif isinstance(value, list):
             stack.extend(((*path, index), item) for index, item in enumerate(value))
@@ -131,8 +135,9 @@ def strict_loads(body: bytes, *, check_strings: bool = True) -> Any:
         raise JSONBodyError(f"the body is not valid JSON: {error.msg} at line {error.lineno} "
                             f"column {error.colno}") from None
     except _RepeatedMemberError as error:
-        raise JSONBodyError(f"the member {error.name!r} appears more than once in one object; "
-                            "send each name once", field=error.name) from None
+        name = _printable(error.name)
+        raise JSONBodyError(f"the member {name!r} appears more than once in one object; "
+                            "send each name once", field=name) from None
     except RecursionError:
         raise JSONBodyError("the body is nested too deeply") from None
     except ValueError as error:  # NaN / Infinity
@@ -165,7 +170,7 @@ class StrictJSONMiddleware:
             return
         refusal = _url_refusal(scope)
         if refusal is not None:
-            await _answer(scope, receive, send, *refusal)
+            await _answer(scope, receive, send, *refusal, where="query")
             return
         method = scope["method"]
         if method not in JSON_METHODS or any(
@@ -236,13 +241,8 @@ def _replay(body: bytes, receive: Receive) -> Receive:
 
 
 async def _answer(scope: Scope, receive: Receive, send: Send, status: int, detail: str,
-                  error: JSONBodyError | None) -> None:
-    request = Request(scope)
-    errors = None
-    if error is not None and status == 422:
-        where = "query" if "query" in detail.lower() else "body"
-        errors = [{"row": None, "field": error.field, "message": error.message, "in": where}]
-    elif error is not None:
-        errors = [{"row": None, "field": error.field, "message": error.message, "in": "body"}]
-    response = problem_response(request, status, detail, errors=errors)
+                  error: JSONBodyError | None, *, where: str = "body") -> None:
+    errors = None if error is None else [
+        {"row": None, "field": error.field, "message": error.message, "in": where}]
+    response = problem_response(Request(scope), status, detail, errors=errors)
     await response(scope, receive, send)

@@ -135,7 +135,7 @@ def _transition(request: Request, session: Session, alert_id: int, principal: Pr
 
 
 def _get(session: Session, alert_id: int, *, for_update: bool = False) -> Alert:
-    if alert_id > MAX_BIGINT:
+    if not 1 <= alert_id <= MAX_BIGINT:  # ids start at 1
         raise ProblemError(404, f"There is no alert {alert_id}.")
     query = select(Alert).where(Alert.id == alert_id).options(selectinload(Alert.events))
     if for_update:

@@ -24,7 +24,7 @@ router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
 def list_deliveries(alert_id: int, session: Session = Depends(get_session),
                     _: Principal = Depends(require_read)) -> DeliveryList:
     """Every notification queued for the alert, oldest first, with each delivery attempt."""
-    alert = session.get(Alert, alert_id) if alert_id <= MAX_BIGINT else None
+    alert = session.get(Alert, alert_id) if 1 <= alert_id <= MAX_BIGINT else None
     if alert is None:
         raise ProblemError(404, f"There is no alert {alert_id}.")
     experiment = session.get(Experiment, alert.experiment_id)

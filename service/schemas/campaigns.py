@@ -44,7 +44,8 @@ class CampaignCreate(BaseModel):
         min_length=1, max_length=26,
         description="{arm: share of that arm's units the campaign reaches, 0..1}; arms left "
                     "out are not reached")
-    expected_size: Annotated[int, Strict(), Field(ge=1)] | None = Field(
+    # At most 2**53 units, as for observation counts (and within the BIGINT column).
+    expected_size: Annotated[int, Strict(), Field(ge=1, le=2**53)] | None = Field(
         None, description="units the campaign is expected to bring over all its days; when "
                           "left out it is estimated from the experiment's recent traffic")
 

@@ -91,7 +91,8 @@ def test_a_ramp_uses_the_weights_in_force_on_the_last_day(client: Any) -> None:
     assert answer["weights"] == {"control": 0.5, "cards": 0.5}
     counts = np.array([[r["entered"] for r in rows[i:i + 2]] for i in range(0, len(rows), 2)])
     planned = np.array([[0.9, 0.1]] * 7 + [[0.5, 0.5]] * 7)
-    expected = sensitivity(counts, planned, scenario.ARMS, days=2).to_dict()
+    expected = sensitivity(counts, planned, scenario.ARMS, days=2,
+                           alpha=DiagnosisConfig().scan_alpha).to_dict()
     assert {k: v for k, v in answer.items() if k != "as_of"} == json.loads(
         json.dumps(expected))
 
