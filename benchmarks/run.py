@@ -15,6 +15,7 @@ import json
 import multiprocessing
 import os
 import platform
+import re
 import sys
 import time
 from collections.abc import Callable, Sequence
@@ -320,6 +321,15 @@ def write_markdown(results: dict[str, Any], path: Path) -> None:
     notes = results.get("notes") or []
     if notes:
         lines += ["", "## Notes on goals missed or not run", ""] + [f"- {n}" for n in notes]
+    # Sections written by other scripts or by hand sit between <!-- NAME:start/end --> markers
+    # and survive a rewrite.
+    kept = re.findall(r"<!-- (\w+):start -->.*?<!-- \1:end -->",
+                      path.read_text() if path.exists() else "", flags=re.S)
+    old_text = path.read_text() if path.exists() else ""
+    for name in kept:
+        match = re.search(rf"<!-- {name}:start -->.*?<!-- {name}:end -->", old_text, flags=re.S)
+        if match:
+            lines += ["", match.group(0)]
     path.write_text("\n".join(lines) + "\n")
 
 

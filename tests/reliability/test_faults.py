@@ -303,3 +303,23 @@ def test_postgres_refusing_connections_answers_503_then_recovers(tmp_path: Path)
         finally:
             server.stop()
 
+
+
+def test_only_unavailability_errors_become_503() -> None:
+    """What the 503 handler takes for "the database is unavailable, retry": lost or refused
+    connections, lock timeouts, an exhausted pool; constraint and data errors stay 500s
+    (they are bugs, and retrying would not help)."""
+    from sqlalchemy import exc
+
+    from service.problems import database_unavailable
+
+    orig = Exception("server closed the connection unexpectedly")
+    assert database_unavailable(exc.OperationalError("SELECT 1", {}, orig))
+    assert database_unavailable(exc.InterfaceError("SELECT 1", {}, orig))
+    assert database_unavailable(exc.TimeoutError("QueuePool limit of size 5 overflow 10"))
+    assert database_unavailable(exc.DisconnectionError("gone"))
+    assert database_unavailable(exc.DBAPIError("SELECT 1", {}, orig,
+                                               connection_invalidated=True))
+    assert not database_unavailable(exc.IntegrityError("INSERT", {}, orig))
+    assert not database_unavailable(exc.DataError("INSERT", {}, orig))
+    assert not database_unavailable(ValueError("not a database error"))
