@@ -90,27 +90,54 @@ class ObservationTable:
         """Validate rows in the flat layout (``date, arm, source, entered, NAME.n, ...``)."""
         arms = tuple(arms)
         clean, metric_names = validate_frame(frame, arms, start=start, end=end)
-        row_days = clean["date"].to_numpy().astype("datetime64[D]")
+        return cls.from_cells(
+            arms, clean["date"].to_numpy().astype("datetime64[D]"), clean["arm"].to_numpy(),
+            clean["source"].to_numpy(), clean["entered"].to_numpy(np.int64),
+            {name: clean[[f"{name}.{s}" for s in STAT_FIELDS]].to_numpy(float)
+             for name in metric_names},
+            start=start, end=end)
+
+    @classmethod
+    def from_cells(cls, arms: Sequence[str], days: np.ndarray, arm: np.ndarray,
+                   source: np.ndarray, entered: np.ndarray, metrics: Mapping[str, np.ndarray],
+                   *, start: dt.date | None = None, end: dt.date | None = None
+                   ) -> ObservationTable:
+        """Assemble the cube from rows that are valid already (no checks are repeated).
+
+        One entry per row: ``days`` (``datetime64[D]``), ``arm`` and ``source`` names,
+        ``entered`` counts, and per metric an ``(rows, 3)`` array of ``n, sum, sum_sq``.
+        Rows sharing a key are summed. Use :meth:`from_frame` for data not yet validated.
+
+        Example:
+            >>> table = ObservationTable.from_cells(
+            ...     ["control", "variant"], np.array(["2026-03-01"] * 2, "datetime64[D]"),
+            ...     np.array(["control", "variant"]), np.array(["organic"] * 2),
+            ...     np.array([100, 104]), {})
+            >>> table.entered[0, :, 0].tolist()
+            [100, 104]
+        """
+        arms = tuple(arms)
+        row_days = np.asarray(days, dtype="datetime64[D]")
         first = np.datetime64(start, "D") if start is not None else row_days.min()
         last = row_days.max()
         if end is not None:
             last = max(last, np.datetime64(end, "D"))
         dates = np.arange(first, last + np.timedelta64(1, "D"), dtype="datetime64[D]")
-        sources = tuple(sorted(clean["source"].unique()))
+        sources_found, source_index = np.unique(np.asarray(source, dtype=str),
+                                                return_inverse=True)
+        sources = tuple(str(s) for s in sources_found)
         day_index = (row_days - first).astype(np.int64)
-        arm_index = pd.Categorical(clean["arm"], categories=arms).codes.astype(np.int64)
-        source_index = pd.Categorical(clean["source"], categories=sources).codes.astype(np.int64)
+        arm_index = pd.Categorical(arm, categories=arms).codes.astype(np.int64)
         shape = (len(dates), len(arms), len(sources))
-        entered = np.zeros(shape, dtype=np.int64)
-        np.add.at(entered, (day_index, arm_index, source_index),
-                  clean["entered"].to_numpy(np.int64))
-        metrics: dict[str, np.ndarray] = {}
-        for name in metric_names:
+        cell = (day_index, arm_index, source_index.astype(np.int64))
+        entered_cube = np.zeros(shape, dtype=np.int64)
+        np.add.at(entered_cube, cell, np.asarray(entered, dtype=np.int64))
+        cubes: dict[str, np.ndarray] = {}
+        for name, values in metrics.items():
             cube = np.zeros((*shape, 3), dtype=float)
-            values = clean[[f"{name}.{s}" for s in STAT_FIELDS]].to_numpy(float)
-            np.add.at(cube, (day_index, arm_index, source_index), values)
-            metrics[name] = cube
-        return cls(arms, dates, sources, entered, metrics)
+            np.add.at(cube, cell, np.asarray(values, dtype=float))
+            cubes[name] = cube
+        return cls(arms, dates, sources, entered_cube, cubes)
 
 
 def metric_columns(columns: Iterable[str]) -> list[str]:
@@ -125,11 +152,16 @@ def metric_columns(columns: Iterable[str]) -> list[str]:
 
 
 def records_to_frame(rows: Iterable[Mapping[str, object]]) -> pd.DataFrame:
-    """Flatten JSON-style rows (nested ``metrics``) into the flat column layout."""
-    flat: list[dict[str, object]] = []
+    """Flatten JSON-style rows (nested ``metrics``) into the flat column layout.
+
+    A metric missing on a row leaves its three cells empty (``None``), which
+    :func:`validate_frame` reads as ``n = 0``.
+    """
+    rows = list(rows)
     problems: list[Problem] = []
+    nested: list[Mapping[str, object]] = []
+    names: dict[str, None] = {}  # insertion-ordered set
     for index, row in enumerate(rows):
-        item = {k: row.get(k) for k in ("date", "arm", "source", "entered")}
         metrics = row.get("metrics") or {}
         if not isinstance(metrics, Mapping):
             problems.append(Problem("metrics", "must be an object {name: {n, sum, sum_sq}}",
@@ -139,13 +171,18 @@ def records_to_frame(rows: Iterable[Mapping[str, object]]) -> pd.DataFrame:
             if not isinstance(stats, Mapping):
                 problems.append(Problem(f"metrics.{name}", "must be an object {n, sum, sum_sq}",
                                         index))
-                continue
-            for stat in STAT_FIELDS:
-                item[f"{name}.{stat}"] = stats.get(stat)
-        flat.append(item)
+            names.setdefault(name)
+        nested.append(metrics)
     if problems:
         raise InputError(problems)
-    return pd.DataFrame(flat, columns=None if flat else ["date", "arm", "source", "entered"])
+    columns: dict[str, list[object]] = {
+        key: [row.get(key) for row in rows] for key in ("date", "arm", "source", "entered")}
+    empty: Mapping[str, object] = {}
+    for name in names:
+        cells = [metrics.get(name, empty) for metrics in nested]
+        for stat in STAT_FIELDS:
+            columns[f"{name}.{stat}"] = [cell.get(stat) for cell in cells]  # type: ignore[union-attr]
+    return pd.DataFrame(columns)
 
 
 def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date | None = None,
@@ -250,5 +287,8 @@ def _numeric(series: pd.Series) -> np.ndarray:
     """Numbers as float; booleans and unparsable text become NaN (and are reported)."""
     if series.dtype == bool:
         return np.full(len(series), np.nan)
-    values = series.map(lambda v: np.nan if isinstance(v, bool | np.bool_) else v)
-    return pd.to_numeric(values, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+    if series.dtype == object and pd.api.types.infer_dtype(series, skipna=True) not in (
+            "integer", "floating", "mixed-integer-float", "string", "empty"):
+        # Mixed cells may hold booleans, which to_numeric would read as 0 and 1.
+        series = series.map(lambda v: np.nan if isinstance(v, bool | np.bool_) else v)
+    return pd.to_numeric(series, errors="coerce").to_numpy(dtype=float, na_value=np.nan)

@@ -7,8 +7,7 @@ import datetime as dt
 from dataclasses import dataclass
 from typing import Any
 
-import pandas as pd
-from sqlalchemy import func, select
+from sqlalchemy import Row, func, select
 from sqlalchemy.orm import Session
 
 from detectors import (
@@ -20,12 +19,12 @@ from detectors import (
     daily_series,
     diagnose,
 )
-from detectors.data import STAT_FIELDS
 
 from .alerting import CORRECTED_DATA, AlertChanges, sync_alerts
 from .campaigns import known_campaigns
 from .db.locks import hold_experiment_lock
 from .db.models import DiagnosisSnapshot, Experiment, Observation, utcnow
+from .db.observation_store import StagedUpload, read_observations
 from .http import entity_tag, json_safe
 from .notify.outbox import enqueue_for_changes
 
@@ -47,39 +46,31 @@ def schedule_for(experiment: Experiment) -> AllocationSchedule:
 
 
 def stored_rows(session: Session, experiment_id: str, *, first: dt.date | None = None,
-                last: dt.date | None = None) -> list[Observation]:
-    query = select(Observation).where(Observation.experiment_id == experiment_id)
+                last: dt.date | None = None) -> list[Row[tuple[dt.date, str, str, int, Any]]]:
+    """Stored rows (``date, arm, source, entered, metrics``) sorted by date, arm and source."""
+    query = select(Observation.date, Observation.arm, Observation.source, Observation.entered,
+                   Observation.metrics).where(Observation.experiment_id == experiment_id)
     if first is not None:
         query = query.where(Observation.date >= first)
     if last is not None:
         query = query.where(Observation.date <= last)
-    return list(session.scalars(query.order_by(Observation.date, Observation.arm,
+    return list(session.execute(query.order_by(Observation.date, Observation.arm,
                                                Observation.source)))
 
 
-def rows_to_frame(rows: list[Observation]) -> pd.DataFrame:
-    """The flat layout the detectors read: date, arm, source, entered, NAME.n/.sum/.sum_sq."""
-    names = sorted({name for row in rows for name in row.metrics})
-    columns: dict[str, list[Any]] = {
-        "date": [row.date.isoformat() for row in rows],
-        "arm": [row.arm for row in rows],
-        "source": [row.source for row in rows],
-        "entered": [row.entered for row in rows],
-    }
-    for name in names:
-        for stat in STAT_FIELDS:
-            columns[f"{name}.{stat}"] = [row.metrics[name][stat] if name in row.metrics
-                                         else None for row in rows]
-    return pd.DataFrame(columns)
+def load_table(session: Session, experiment: Experiment, *,
+               staged: StagedUpload | None = None) -> ObservationTable | None:
+    """All stored rows of the experiment as an observation table (``None`` without rows).
 
-
-def load_table(session: Session, experiment: Experiment) -> ObservationTable | None:
-    """All stored rows of the experiment as an observation table (``None`` without rows)."""
-    rows = stored_rows(session, experiment.id)
-    if not rows:
+    The rows were validated when they were written, so the table is assembled without
+    checking them again. ``staged``: the upload this transaction just made (its rows are
+    taken from memory instead of being read back).
+    """
+    rows = read_observations(session, experiment.id, staged)
+    if not len(rows):
         return None
-    return ObservationTable.from_frame(rows_to_frame(rows), experiment.arms,
-                                       start=experiment.start_date)
+    return ObservationTable.from_cells(experiment.arms, rows.dates, rows.arms, rows.sources,
+                                       rows.entered, rows.metrics, start=experiment.start_date)
 
 
 def latest_snapshot(session: Session, experiment_id: str) -> DiagnosisSnapshot | None:
@@ -120,14 +111,16 @@ def snapshot_version(session: Session, experiment_id: str, version: int
 
 def refresh_diagnosis(session: Session, experiment: Experiment, *,
                       config: DiagnosisConfig | None = None,
-                      now: dt.datetime | None = None, cause: str = CORRECTED_DATA) -> Refresh:
+                      now: dt.datetime | None = None, cause: str = CORRECTED_DATA,
+                      staged: StagedUpload | None = None) -> Refresh:
     """Diagnose every stored row, keep the result as a new snapshot if it differs from the
     latest one, and sync the alerts (``cause``: what changed, for resolution reasons).
     Takes the experiment's write lock unless the transaction holds it already
-    (:mod:`service.db.locks`): two workers never diagnose one experiment at once."""
+    (:mod:`service.db.locks`): two workers never diagnose one experiment at once.
+    ``staged``: the upload that this transaction just made, if any (see :func:`load_table`)."""
     hold_experiment_lock(session, experiment.id)
     now = now or utcnow()
-    table = load_table(session, experiment)
+    table = load_table(session, experiment, staged=staged)
     schedule = schedule_for(experiment)
     diagnosis: Diagnosis | None = None
     document: dict[str, Any] | None = None
@@ -164,5 +157,5 @@ def refresh_diagnosis(session: Session, experiment: Experiment, *,
 
 __all__ = ["NO_DATA", "InputError", "Refresh", "SnapshotSummary", "latest_snapshot",
            "latest_summaries", "load_table",
-           "refresh_diagnosis", "rows_to_frame", "schedule_for", "snapshot_version",
+           "refresh_diagnosis", "schedule_for", "snapshot_version",
            "stored_rows"]

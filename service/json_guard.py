@@ -57,11 +57,13 @@ class _RepeatedMemberError(ValueError):
 
 
 def _unique_members(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
-    found: dict[str, Any] = {}
-    for name, value in pairs:
-        if name in found:
-            raise _RepeatedMemberError(name)
-        found[name] = value
+    found = dict(pairs)
+    if len(found) != len(pairs):  # rare: find the first repeated name for the message
+        seen: set[str] = set()
+        for name, _ in pairs:
+            if name in seen:
+                raise _RepeatedMemberError(name)
+            seen.add(name)
     return found
 
 

@@ -97,13 +97,13 @@ def _write(request: Request, session: Session, experiment_id: str, body: bytes,
         return input_error_response(request, error, csv_lines=is_csv)
 
     experiment = lock_experiment(session, experiment_id)
-    inserted, updated = upsert_rows(session, experiment, rows)
-    refresh = refresh_diagnosis(session, experiment,
-                                cause=CORRECTED_DATA if updated else LATER_DATA)
+    staged = upsert_rows(session, experiment, rows)
+    refresh = refresh_diagnosis(session, experiment, staged=staged,
+                                cause=CORRECTED_DATA if staged.updated else LATER_DATA)
     session.commit()
     snapshot = refresh.snapshot
     result = WriteResult(
-        written=len(rows.records), inserted=inserted, updated=updated,
+        written=len(rows), inserted=staged.inserted, updated=staged.updated,
         diagnosis=DiagnosisRef(
             status=None if snapshot.status == NO_DATA else snapshot.status,
             as_of=snapshot.as_of.isoformat() if snapshot.as_of else None,

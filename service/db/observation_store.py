@@ -1,0 +1,209 @@
+"""Observation rows in bulk: columnar upserts and columnar reads.
+
+Uploads and diagnoses move whole experiments of rows (180 days x 4 arms x 12 sources is
+8,640), so neither goes through ORM objects:
+
+* writes: the rows go to a per-connection temporary table (PostgreSQL ``COPY``, SQLite
+  ``executemany``), then into ``observations`` with one ``INSERT ... SELECT ... ON CONFLICT DO
+  UPDATE``, inside the caller's transaction, so a failure leaves nothing written;
+* reads: one ``SELECT`` with a column per metric statistic, extracted from the JSON by the
+  database, turned into numpy arrays without a Python loop over rows. Right after an upload
+  only the rows it did not write are read back; its own are taken from memory.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
+
+import numpy as np
+from sqlalchemy import Float, Row, bindparam, cast, select, text
+from sqlalchemy.orm import Session
+
+from detectors.data import STAT_FIELDS
+
+from .models import Observation, UTCDateTime
+
+if TYPE_CHECKING:
+    import datetime as dt
+
+_STAGING = "inrush_observations_incoming"
+_KEY = ("experiment_id", "date", "arm", "source")
+_SAME_KEY = (f"{_STAGING}.date = observations.date AND {_STAGING}.arm = observations.arm "
+             f"AND {_STAGING}.source = observations.source")
+
+
+@dataclass(frozen=True, eq=False)
+class ObservationColumns:
+    """Rows of one experiment as columns, one entry per row.
+
+    ``metrics`` maps a metric name to an ``(rows, 3)`` array of ``n, sum, sum_sq``; where a
+    metric is absent on a row, ``present[name]`` is False (its stored JSON omits the metric)
+    and the statistics are zeros.
+    """
+
+    dates: np.ndarray  # datetime64[D]
+    arms: np.ndarray  # str
+    sources: np.ndarray  # str
+    entered: np.ndarray  # int64
+    metrics: dict[str, np.ndarray] = field(default_factory=dict)
+    present: dict[str, np.ndarray] = field(default_factory=dict)
+
+    def __len__(self) -> int:
+        return int(self.dates.shape[0])
+
+    def concat(self, other: ObservationColumns) -> ObservationColumns:
+        """These rows followed by ``other``'s; a metric missing on one side is absent there."""
+        if not len(self):
+            return other
+        if not len(other):
+            return self
+        names = list(dict.fromkeys([*self.metrics, *other.metrics]))
+        return ObservationColumns(
+            np.concatenate([self.dates, other.dates]),
+            np.concatenate([self.arms, other.arms]),
+            np.concatenate([self.sources, other.sources]),
+            np.concatenate([self.entered, other.entered]),
+            {name: np.concatenate([self._stats(name), other._stats(name)]) for name in names},
+            {name: np.concatenate([self._present(name), other._present(name)])
+             for name in names})
+
+    def _stats(self, name: str) -> np.ndarray:
+        return self.metrics[name] if name in self.metrics else np.zeros((len(self), 3))
+
+    def _present(self, name: str) -> np.ndarray:
+        return self.present[name] if name in self.present else np.zeros(len(self), bool)
+
+    def metrics_json(self) -> list[str]:
+        """The stored ``metrics`` document of each row, as JSON text."""
+        # Per-row text has to be built in Python; each metric's fragments are made in one
+        # pass over plain lists (repr gives the shortest float text that reads back exactly).
+        pieces: list[list[str]] = []
+        for name, values in self.metrics.items():
+            label = json.dumps(name)
+            pieces.append([
+                f'{label}: {{"n": {n}, "sum": {total!r}, "sum_sq": {squares!r}}}' if kept
+                else "" for n, total, squares, kept in zip(
+                    values[:, 0].astype(np.int64).tolist(), values[:, 1].tolist(),
+                    values[:, 2].tolist(), self.present[name].tolist(), strict=True)])
+        if not pieces:
+            return ["{}"] * len(self)
+        return ["{" + ", ".join(part for part in parts if part) + "}"
+                for parts in zip(*pieces, strict=True)]
+
+
+@dataclass(frozen=True, eq=False)
+class StagedUpload:
+    """An upsert made in the open transaction; its rows stay staged until the transaction ends.
+
+    Pass it to :func:`read_observations` in the same transaction to read back only the stored
+    rows it did not write.
+    """
+
+    experiment_id: str
+    columns: ObservationColumns
+    updated: int
+
+    @property
+    def inserted(self) -> int:
+        return len(self.columns) - self.updated
+
+
+def upsert_observations(session: Session, experiment_id: str, rows: ObservationColumns,
+                        now: dt.datetime) -> StagedUpload:
+    """Insert or replace ``rows`` (key: experiment, date, arm, source) in the open transaction.
+
+    The count of replaced rows is exact when the caller holds the experiment's write lock
+    (``service.db.locks``).
+    """
+    dialect = session.get_bind().dialect.name
+    driver = session.connection().connection.driver_connection
+    records = zip(rows.dates.astype("datetime64[D]").astype(str).tolist(), rows.arms.tolist(),
+                  rows.sources.tolist(), rows.entered.tolist(), rows.metrics_json(),
+                  strict=True)
+    if dialect == "postgresql":
+        with driver.cursor() as cursor:  # type: ignore[union-attr]
+            # Emptied at every commit; the pooled connection keeps it for the next upload.
+            cursor.execute(f"CREATE TEMPORARY TABLE IF NOT EXISTS {_STAGING} (date date, "
+                           "arm text, source text, entered bigint, metrics jsonb, "
+                           "PRIMARY KEY (date, arm, source)) ON COMMIT DELETE ROWS")
+            cursor.execute(f"TRUNCATE {_STAGING}")
+            with cursor.copy(f"COPY {_STAGING} (date, arm, source, entered, metrics) "
+                             "FROM STDIN") as copy:
+                for record in records:
+                    copy.write_row(record)
+    elif dialect == "sqlite":
+        cursor = driver.cursor()  # type: ignore[union-attr]
+        try:
+            cursor.execute(f"CREATE TEMPORARY TABLE IF NOT EXISTS {_STAGING} (date date, "
+                           "arm text, source text, entered integer, metrics text, "
+                           "PRIMARY KEY (date, arm, source))")
+            cursor.execute(f"DELETE FROM {_STAGING}")
+            cursor.executemany(f"INSERT INTO {_STAGING} VALUES (?, ?, ?, ?, ?)", records)
+        finally:
+            cursor.close()
+    else:
+        raise RuntimeError(f"upserts are implemented for SQLite and PostgreSQL, not {dialect}")
+    updated = session.scalar(text(
+        f"SELECT count(*) FROM observations JOIN {_STAGING} ON {_SAME_KEY} "
+        "WHERE observations.experiment_id = :id"), {"id": experiment_id})
+    # "WHERE true" lets SQLite tell the upsert clause from a join constraint.
+    session.execute(text(
+        "INSERT INTO observations (experiment_id, date, arm, source, entered, metrics, "
+        f"updated_at) SELECT :id, date, arm, source, entered, metrics, :now FROM {_STAGING} "
+        f"WHERE true ON CONFLICT ({', '.join(_KEY)}) DO UPDATE SET entered = excluded.entered, "
+        "metrics = excluded.metrics, updated_at = excluded.updated_at"
+    ).bindparams(bindparam("now", type_=UTCDateTime)), {"id": experiment_id, "now": now})
+    return StagedUpload(experiment_id, rows, int(updated or 0))
+
+
+def metric_names(session: Session, experiment_id: str) -> list[str]:
+    """Every metric name found in the experiment's stored rows, sorted."""
+    if session.get_bind().dialect.name == "postgresql":
+        query = text("SELECT DISTINCT jsonb_object_keys(metrics) FROM observations "
+                     "WHERE experiment_id = :id")
+    else:
+        query = text("SELECT DISTINCT item.key FROM observations, json_each(observations.metrics)"
+                     " AS item WHERE observations.experiment_id = :id")
+    return sorted(str(name) for (name,) in session.execute(query, {"id": experiment_id}))
+
+
+def read_observations(session: Session, experiment_id: str,
+                      staged: StagedUpload | None = None) -> ObservationColumns:
+    """All stored rows of the experiment as columns.
+
+    With ``staged`` (the upload this transaction just made) only the stored rows it did not
+    write are read, and its own rows are added from memory.
+    """
+    names = metric_names(session, experiment_id)
+    extracted = [cast(Observation.metrics[(name, stat)].as_string(), Float)
+                 for name in names for stat in STAT_FIELDS]
+    query = select(Observation.date, Observation.arm, Observation.source, Observation.entered,
+                   *extracted).where(Observation.experiment_id == experiment_id)
+    if staged is not None:
+        if staged.experiment_id != experiment_id:
+            raise ValueError("the staged upload belongs to another experiment")
+        query = query.where(text(f"NOT EXISTS (SELECT 1 FROM {_STAGING} WHERE {_SAME_KEY})"))
+    stored = _to_columns(session.execute(query).all(), names)
+    return stored if staged is None else stored.concat(staged.columns)
+
+
+def _to_columns(result: Sequence[Row[tuple[object, ...]]], names: Sequence[str]
+                ) -> ObservationColumns:
+    if not result:
+        return ObservationColumns(np.array([], dtype="datetime64[D]"), np.array([], str),
+                                  np.array([], str), np.array([], np.int64))
+    columns = list(zip(*result, strict=True))
+    stats = np.array(columns[4:], dtype=float).T if names else np.zeros((len(result), 0))
+    metrics: dict[str, np.ndarray] = {}
+    present: dict[str, np.ndarray] = {}
+    for position, name in enumerate(names):
+        values = stats[:, 3 * position:3 * position + 3]
+        absent = np.isnan(values).all(axis=1)
+        present[name] = ~absent
+        metrics[name] = np.where(absent[:, None], 0.0, values)
+    return ObservationColumns(np.array(columns[0], dtype="datetime64[D]"),
+                              np.array(columns[1], dtype=str), np.array(columns[2], dtype=str),
+                              np.array(columns[3], dtype=np.int64), metrics, present)
