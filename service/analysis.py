@@ -8,7 +8,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from sqlalchemy import Row, func, select
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, defer
 
 from detectors import (
     AllocationSchedule,
@@ -73,10 +73,15 @@ def load_table(session: Session, experiment: Experiment, *,
                                        rows.entered, rows.metrics, start=experiment.start_date)
 
 
-def latest_snapshot(session: Session, experiment_id: str) -> DiagnosisSnapshot | None:
-    return session.scalar(select(DiagnosisSnapshot)
-                          .where(DiagnosisSnapshot.experiment_id == experiment_id)
-                          .order_by(DiagnosisSnapshot.version.desc()).limit(1))
+def latest_snapshot(session: Session, experiment_id: str, *, documents: bool = True
+                    ) -> DiagnosisSnapshot | None:
+    """The experiment's latest snapshot; with ``documents=False`` its diagnosis and series
+    documents are loaded only if they are used."""
+    query = (select(DiagnosisSnapshot).where(DiagnosisSnapshot.experiment_id == experiment_id)
+             .order_by(DiagnosisSnapshot.version.desc()).limit(1))
+    if not documents:
+        query = query.options(defer(DiagnosisSnapshot.document), defer(DiagnosisSnapshot.series))
+    return session.scalar(query)
 
 
 @dataclass(frozen=True)
@@ -136,7 +141,7 @@ def refresh_diagnosis(session: Session, experiment: Experiment, *,
     status = diagnosis.status if diagnosis else NO_DATA
     etag, series_etag = entity_tag(document), entity_tag(series)
 
-    latest = latest_snapshot(session, experiment.id)
+    latest = latest_snapshot(session, experiment.id, documents=False)
     new_version = latest is None or (latest.etag, latest.series_etag) != (etag, series_etag)
     if new_version:
         snapshot = DiagnosisSnapshot(

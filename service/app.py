@@ -8,6 +8,7 @@ from contextlib import asynccontextmanager
 from importlib.metadata import PackageNotFoundError, version
 from typing import Any
 
+from anyio import to_thread
 from fastapi import FastAPI
 from fastapi.openapi.utils import get_openapi
 from pydantic import BaseModel
@@ -24,6 +25,7 @@ from .notify.settings import NotifySettings
 from .notify.worker import start_worker
 from .pages.router import router as pages_router
 from .problems import PROBLEM_MEDIA_TYPE, install_problem_handlers
+from .revalidation import RevalidationMiddleware
 from .routers import (
     alerts,
     campaigns,
@@ -74,6 +76,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(_: FastAPI) -> AsyncIterator[None]:
+        # Synchronous routes and dependencies run on these threads; as many as the pool has
+        # connections, so that requests never open one each (or wait for one).
+        to_thread.current_default_thread_limiter().total_tokens = settings.request_threads
         if settings.migrate_on_start:
             await run_in_threadpool(database.migrate)
         # Webhook deliveries (INRUSH_NOTIFY_WORKER=0 leaves them to another process).
@@ -94,6 +99,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.add_middleware(StrictJSONMiddleware)  # inside the size limit: reads bodies it allows
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,
                        public_url=settings.public_url)
+    app.add_middleware(RevalidationMiddleware)  # 304s for polls, before routing
     install_metrics(app)  # outside the others: times and counts every answer
     add_cors(app)  # preflights and CORS headers on every answer, errors included
     app.add_middleware(AccessLogMiddleware)  # outermost: ids and logs every answer

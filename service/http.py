@@ -18,13 +18,24 @@ JSON_MEDIA_TYPE = "application/json"
 
 
 def json_safe(value: Any) -> Any:
-    """A copy of ``value`` with non-finite floats replaced by ``None`` (JSON has no NaN)."""
+    """``value`` ready for JSON: non-finite floats become ``None`` (JSON has no NaN).
+
+    A document that JSON holds as it is (the common case) is returned itself, not copied.
+    """
+    try:
+        json.dumps(value, allow_nan=False)
+    except (ValueError, TypeError):
+        return _json_safe_copy(value)
+    return value
+
+
+def _json_safe_copy(value: Any) -> Any:
     if isinstance(value, float):
         return value if math.isfinite(value) else None
     if isinstance(value, dict):
-        return {str(k): json_safe(v) for k, v in value.items()}
+        return {str(k): _json_safe_copy(v) for k, v in value.items()}
     if isinstance(value, list | tuple):
-        return [json_safe(v) for v in value]
+        return [_json_safe_copy(v) for v in value]
     return value
 
 

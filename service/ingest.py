@@ -24,7 +24,7 @@ from .db.models import Experiment, utcnow
 from .db.observation_store import ObservationColumns, StagedUpload, upsert_observations
 from .gc_pause import paused_garbage_collection
 from .json_guard import JSONBodyError, find_bad_string, format_path, strict_loads
-from .schemas.observations import ObservationIn
+from .schemas.observations import ObservationIn, rows_plainly_conform
 
 BASE_COLUMNS = ("date", "arm", "source", "entered")
 _ROWS_ADAPTER: TypeAdapter[list[ObservationIn]] = TypeAdapter(list[ObservationIn])
@@ -97,6 +97,8 @@ def _parse_json_body(body: bytes, max_rows: int) -> ParsedBody:
     if not rows:
         raise InputError([Problem("rows", "no observations: at least one row is needed")])
 
+    if rows_plainly_conform(rows):  # the common case, without a model per row
+        return ParsedBody(records_to_frame(rows), [])
     problems: list[Problem] = []
     failed: set[int] = set()
     try:
@@ -108,6 +110,8 @@ def _parse_json_body(body: bytes, max_rows: int) -> ParsedBody:
             failed.add(index)
             problems.append(Problem(".".join(str(p) for p in location) or "row", item["msg"],
                                     index))
+    if not failed:
+        return ParsedBody(records_to_frame(rows), problems)
     good = [i for i in range(len(rows)) if i not in failed]
     frame = records_to_frame([rows[i] for i in good])
     frame.index = pd.Index(good)

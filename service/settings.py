@@ -30,11 +30,16 @@ class Settings(BaseSettings):
     migrate_on_start: bool = Field(True, description="apply database migrations at startup")
     sqlite_busy_timeout_ms: int = Field(30_000, ge=0,
                                         description="how long a SQLite writer waits for a lock")
+    request_threads: int = Field(
+        12, ge=1, le=256,
+        description="threads per worker process for request work that blocks (database, "
+                    "detectors); more only contend for the interpreter lock")
     database_pool_size: int = Field(
-        5, ge=1, description="PostgreSQL connections each worker process keeps open")
+        12, ge=1, description="database connections each worker process keeps open (one per "
+                              "request thread, so that none is opened per request)")
     database_max_overflow: int = Field(
-        10, ge=0, description="extra PostgreSQL connections a worker process may open under "
-                              "load (closed again when returned)")
+        4, ge=0, description="extra connections a worker process may open under load "
+                             "(background work; closed again when returned)")
 
     def base_url(self, fallback: str) -> str:
         """The public base URL without a trailing slash (``fallback`` when unset)."""

@@ -19,7 +19,7 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
-from sqlalchemy import Float, Row, bindparam, cast, select, text
+from sqlalchemy import Row, bindparam, select, text
 from sqlalchemy.orm import Session
 
 from detectors.data import STAT_FIELDS
@@ -33,6 +33,7 @@ _STAGING = "inrush_observations_incoming"
 _KEY = ("experiment_id", "date", "arm", "source")
 _SAME_KEY = (f"{_STAGING}.date = observations.date AND {_STAGING}.arm = observations.arm "
              f"AND {_STAGING}.source = observations.source")
+_NOT_STAGED = f"NOT EXISTS (SELECT 1 FROM {_STAGING} WHERE {_SAME_KEY})"
 
 
 @dataclass(frozen=True, eq=False)
@@ -159,15 +160,19 @@ def upsert_observations(session: Session, experiment_id: str, rows: ObservationC
     return StagedUpload(experiment_id, rows, int(updated or 0))
 
 
-def metric_names(session: Session, experiment_id: str) -> list[str]:
-    """Every metric name found in the experiment's stored rows, sorted."""
+def metric_names(session: Session, experiment_id: str, *, besides_staged: bool = False
+                 ) -> list[str]:
+    """Every metric name found in the experiment's stored rows, sorted (``besides_staged``:
+    only in rows that the staged upload did not write)."""
     if session.get_bind().dialect.name == "postgresql":
-        query = text("SELECT DISTINCT jsonb_object_keys(metrics) FROM observations "
-                     "WHERE experiment_id = :id")
+        query = ("SELECT DISTINCT jsonb_object_keys(metrics) FROM observations "
+                 "WHERE experiment_id = :id")
     else:
-        query = text("SELECT DISTINCT item.key FROM observations, json_each(observations.metrics)"
-                     " AS item WHERE observations.experiment_id = :id")
-    return sorted(str(name) for (name,) in session.execute(query, {"id": experiment_id}))
+        query = ("SELECT DISTINCT item.key FROM observations, json_each(observations.metrics) "
+                 "AS item WHERE observations.experiment_id = :id")
+    if besides_staged:
+        query += f" AND {_NOT_STAGED}"
+    return sorted(str(name) for (name,) in session.execute(text(query), {"id": experiment_id}))
 
 
 def read_observations(session: Session, experiment_id: str,
@@ -177,15 +182,16 @@ def read_observations(session: Session, experiment_id: str,
     With ``staged`` (the upload this transaction just made) only the stored rows it did not
     write are read, and its own rows are added from memory.
     """
-    names = metric_names(session, experiment_id)
-    extracted = [cast(Observation.metrics[(name, stat)].as_string(), Float)
+    names = metric_names(session, experiment_id, besides_staged=staged is not None)
+    # as_float: a direct cast (SQLite would print a REAL with 15 digits on the way to text).
+    extracted = [Observation.metrics[(name, stat)].as_float()
                  for name in names for stat in STAT_FIELDS]
     query = select(Observation.date, Observation.arm, Observation.source, Observation.entered,
                    *extracted).where(Observation.experiment_id == experiment_id)
     if staged is not None:
         if staged.experiment_id != experiment_id:
             raise ValueError("the staged upload belongs to another experiment")
-        query = query.where(text(f"NOT EXISTS (SELECT 1 FROM {_STAGING} WHERE {_SAME_KEY})"))
+        query = query.where(text(_NOT_STAGED))
     stored = _to_columns(session.execute(query).all(), names)
     return stored if staged is None else stored.concat(staged.columns)
 

@@ -23,12 +23,13 @@ MIGRATIONS_DIR = Path(__file__).resolve().parent.parent / "migrations"
 _BEGIN_OPTION = "inrush_sqlite_begin"
 
 
-def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 5,
-                max_overflow: int = 10) -> Engine:
+def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
+                max_overflow: int = 4) -> Engine:
     """An engine for ``url``; SQLite connections are configured for concurrent service use.
 
-    ``pool_size`` and ``max_overflow`` bound the connections of this process to a server
-    database (at most their sum are open at once).
+    ``pool_size`` connections are kept open and at most ``max_overflow`` more are opened
+    under load (a file database too: opening and configuring a connection per request would
+    cost more than the request).
     """
     parsed = make_url(url)
     if parsed.get_backend_name() != "sqlite":
@@ -38,7 +39,9 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 5,
     if database and database != ":memory:" and not database.startswith("file:"):
         Path(database).expanduser().resolve().parent.mkdir(parents=True, exist_ok=True)
     # hide_parameters: error messages and logs never show bound values (webhook secrets...).
-    engine = create_engine(url, hide_parameters=True,
+    pooled = {} if database in ("", ":memory:") else {"pool_size": pool_size,
+                                                         "max_overflow": max_overflow}
+    engine = create_engine(url, hide_parameters=True, **pooled,
                            connect_args={"check_same_thread": False,
                                          "timeout": busy_timeout_ms / 1000})
 
@@ -64,8 +67,8 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 5,
 class Database:
     """The engine and session factory of one service instance."""
 
-    def __init__(self, url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 5,
-                 max_overflow: int = 10) -> None:
+    def __init__(self, url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
+                 max_overflow: int = 4) -> None:
         self.url = url
         self.engine = make_engine(url, busy_timeout_ms=busy_timeout_ms, pool_size=pool_size,
                                   max_overflow=max_overflow)

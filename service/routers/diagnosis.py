@@ -34,10 +34,8 @@ def get_diagnosis(experiment_id: str, session: Session = Depends(get_session),
                       ge=1, description="an earlier diagnosis (default: the latest)")] = None,
                   if_none_match: Annotated[str | None, Header()] = None) -> Response:
     """The latest diagnosis document, with an ETag; `If-None-Match` answers 304 when current."""
-    if version is None and if_none_match:
-        cheap = _not_modified(session, experiment_id, if_none_match, DiagnosisSnapshot.etag)
-        if cheap is not None:
-            return cheap
+    # A current If-None-Match of the latest diagnosis is answered before routing
+    # (service.revalidation); one that reaches here is checked against the loaded snapshot.
     snapshot = _snapshot(session, experiment_id, version)
     if snapshot.document is None:
         raise _no_diagnosis(experiment_id)
@@ -50,11 +48,6 @@ def get_series(experiment_id: str, session: Session = Depends(get_session),
                _: Principal = Depends(require_read),
                if_none_match: Annotated[str | None, Header()] = None) -> Response:
     """Per day and arm: units, observed and planned share, flags; units per source and day."""
-    if if_none_match:
-        cheap = _not_modified(session, experiment_id, if_none_match,
-                              DiagnosisSnapshot.series_etag)
-        if cheap is not None:
-            return cheap
     snapshot = _snapshot(session, experiment_id, None)
     if snapshot.series is None:
         raise _no_diagnosis(experiment_id)
@@ -86,20 +79,6 @@ def _snapshot(session: Session, experiment_id: str, version: int | None) -> Diag
                                f"{version}.")
         raise _no_diagnosis(experiment_id)
     return snapshot
-
-
-def _not_modified(session: Session, experiment_id: str, if_none_match: str,
-                  tag_column: Any) -> Response | None:
-    """A 304 from the latest snapshot's tag alone, without loading its documents (polling
-    dashboards mostly ask for what they already have); ``None`` when it must be served."""
-    row = session.execute(
-        select(DiagnosisSnapshot.version, tag_column)
-        .where(DiagnosisSnapshot.experiment_id == experiment_id)
-        .order_by(DiagnosisSnapshot.version.desc()).limit(1)).first()
-    if row is None or row[1] is None or not etag_matches(if_none_match, row[1]):
-        return None
-    return Response(status_code=304, headers={"ETag": row[1], "Cache-Control": REVALIDATE,
-                                              "X-Inrush-Diagnosis-Version": str(row[0])})
 
 
 def _no_diagnosis(experiment_id: str) -> ProblemError:
