@@ -11,6 +11,10 @@
   re-runs its diagnosis over 29 days); the wall time until all 1000 are re-diagnosed, sent by
   a client with 4 connections.
 
+Each is measured on the default SQLite database and, in a full run, again on PostgreSQL
+(``..._postgresql``). The share of CPU time the hypervisor took meanwhile (``steal`` in
+``/proc/stat``) is recorded beside them: on a shared virtual machine it varies from run to run.
+
 All traffic goes to 127.0.0.1; every loop is bounded in count and time. When the service cannot
 be imported or started, each figure records ``"not run: <reason>"``.
 """
@@ -59,29 +63,25 @@ def _free_port() -> int:
 
 
 @contextlib.contextmanager
-def database(full: bool, workdir: Path) -> Iterator[tuple[str, str]]:
-    """A fresh database URL for the run: PostgreSQL when reachable (full run), else SQLite."""
-    if full:
-        try:
-            import psycopg
+def postgres_database() -> Iterator[tuple[str | None, str]]:
+    """A fresh PostgreSQL database for the run, dropped afterwards: ``(url, "")``, or
+    ``(None, reason)`` when no server or driver is available."""
+    try:
+        import psycopg
 
-            name = f"inrush_bench_{os.getpid()}"
-            with psycopg.connect(POSTGRES_ADMIN, autocommit=True, connect_timeout=3) as conn:
-                conn.execute(f'DROP DATABASE IF EXISTS "{name}"')
-                conn.execute(f'CREATE DATABASE "{name}"')
-        except Exception as error:  # no server, no driver: fall back to SQLite
-            reason = f"PostgreSQL unavailable ({type(error).__name__}); "
-        else:
-            try:
-                yield f"postgresql+psycopg://postgres@127.0.0.1:5432/{name}", "postgresql"
-            finally:
-                with contextlib.suppress(Exception), psycopg.connect(
-                        POSTGRES_ADMIN, autocommit=True) as conn:
-                    conn.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
-            return
-    else:
-        reason = ""
-    yield f"sqlite:///{workdir / 'bench.db'}", reason + "sqlite"
+        name = f"inrush_bench_{os.getpid()}"
+        with psycopg.connect(POSTGRES_ADMIN, autocommit=True, connect_timeout=3) as conn:
+            conn.execute(f'DROP DATABASE IF EXISTS "{name}"')
+            conn.execute(f'CREATE DATABASE "{name}"')
+    except Exception as error:  # no server, no driver
+        yield None, f"PostgreSQL unavailable ({type(error).__name__})"
+        return
+    try:
+        yield f"postgresql+psycopg://postgres@127.0.0.1:5432/{name}", ""
+    finally:
+        with contextlib.suppress(Exception), psycopg.connect(POSTGRES_ADMIN,
+                                                               autocommit=True) as conn:
+            conn.execute(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
 
 
 class Server:
@@ -308,67 +308,111 @@ def reanalysis(base: str, token: str, count: int, log: Callable[[str], None]) ->
             "seconds_per_1000": elapsed * 1000 / count}
 
 
+def cpu_times() -> dict[str, float] | None:
+    """Cumulative CPU time of the whole machine by kind (``/proc/stat``, in clock ticks)."""
+    try:
+        fields = Path("/proc/stat").read_text().splitlines()[0].split()[1:]
+    except (OSError, IndexError):
+        return None
+    names = ("user", "nice", "system", "idle", "iowait", "irq", "softirq", "steal")
+    return {name: float(value) for name, value in zip(names, fields, strict=False)}
+
+
+def steal_share(before: dict[str, float] | None, after: dict[str, float] | None
+                ) -> float | None:
+    """Share of the machine's CPU time the hypervisor gave to others meanwhile (``steal``)."""
+    if not before or not after or "steal" not in after:
+        return None
+    spent = {k: after[k] - before.get(k, 0.0) for k in after}
+    total = sum(spent.values())
+    return spent["steal"] / total if total > 0 else None
+
+
+def run_backend(url: str, full: bool, workdir: Path, log: Callable[[str], None]
+                ) -> tuple[dict[str, Any], dict[str, Any]]:
+    """The three measurements against one server on ``url``: (figures, details)."""
+    import httpx
+
+    figures: dict[str, Any] = {}
+    details: dict[str, Any] = {}
+    workdir.mkdir(parents=True, exist_ok=True)
+    before = cpu_times()
+    server = Server(url, workdir)
+    try:
+        client = httpx.Client(base_url=server.base, timeout=120,
+                              headers={"Authorization": f"Bearer {server.token}"})
+        server.wait_healthy(client)
+        details["server"] = "inrush serve, one worker process"
+        try:
+            got = ingest(client, 3 if full else 1, log)
+            details["ingest"] = got
+            figures["speed.ingest_rows_per_s"] = {"csv": got["csv"]["rows_per_s_median"],
+                                                  "json": got["json"]["rows_per_s_median"]}
+        except Exception as error:
+            figures["speed.ingest_rows_per_s"] = f"not run: {error}"
+        wrk, how = find_wrk(allow_install=full)
+        details["wrk"] = how
+        if wrk is None:
+            figures["speed.poll_requests_per_s"] = f"not run: {how}"
+        elif isinstance(figures["speed.ingest_rows_per_s"], str):
+            figures["speed.poll_requests_per_s"] = "not run: no experiment was ingested"
+        else:
+            try:
+                got = poll(client, server, wrk, 15 if full else 2, 16, log)
+                details["poll"] = got
+                figures["speed.poll_requests_per_s"] = got["requests_per_s"]
+                figures["speed.poll_p99_ms"] = got["p99_ms"]
+            except Exception as error:
+                figures["speed.poll_requests_per_s"] = f"not run: {error}"
+        count = 1000 if full else 10
+        try:
+            got = reanalysis(server.base, server.token, count, log)
+            details["reanalysis"] = got
+            figures["scale.reanalysis_1000_experiments_s"] = (
+                got["seconds"] if count == 1000 else got["seconds_per_1000"])
+            if count != 1000:
+                details["reanalysis"]["note"] = f"quick run: {count} experiments, scaled to 1000"
+        except Exception as error:
+            figures["scale.reanalysis_1000_experiments_s"] = f"not run: {error}"
+        client.close()
+    finally:
+        server.stop()
+        details["server_log_tail"] = server.log_tail()[-400:]
+        details["cpu_steal_share"] = steal_share(before, cpu_times())
+    for name in FIGURES:
+        figures.setdefault(name, "not run: see details")
+    return figures, details
+
+
 def run(full: bool, log: Callable[[str], None] = print) -> dict[str, Any]:
+    """Every measurement on the default SQLite database and, in a full run, again on
+    PostgreSQL when it is reachable (figures named ``..._postgresql``)."""
     if importlib.util.find_spec("service.app") is None:
         return not_run("the service (service/app.py) is not importable")
-    try:
-        import httpx
-    except ImportError:
+    if importlib.util.find_spec("httpx") is None:
         return not_run("httpx is not installed")
     workdir = Path(tempfile.mkdtemp(prefix="inrush-bench-"))
     figures: dict[str, Any] = {}
-    details: dict[str, Any] = {}
+    details: dict[str, Any] = {"backends": {}}
     try:
-        with database(full, workdir) as (url, backend):
-            details["database"] = backend
-            server = Server(url, workdir)
-            try:
-                client = httpx.Client(base_url=server.base, timeout=120,
-                                      headers={"Authorization": f"Bearer {server.token}"})
-                server.wait_healthy(client)
-                details["server"] = "inrush serve, one worker process"
-                try:
-                    got = ingest(client, 3 if full else 1, log)
-                    details["ingest"] = got
-                    figures["speed.ingest_rows_per_s"] = {
-                        "csv": got["csv"]["rows_per_s_median"],
-                        "json": got["json"]["rows_per_s_median"]}
-                except Exception as error:
-                    figures["speed.ingest_rows_per_s"] = f"not run: {error}"
-                wrk, how = find_wrk(allow_install=full)
-                details["wrk"] = how
-                if wrk is None:
-                    figures["speed.poll_requests_per_s"] = f"not run: {how}"
-                elif "speed.ingest_rows_per_s" not in figures or isinstance(
-                        figures["speed.ingest_rows_per_s"], str):
-                    figures["speed.poll_requests_per_s"] = "not run: no experiment was ingested"
+        log("  on sqlite (the default database)")
+        got, about = run_backend(f"sqlite:///{workdir / 'bench.db'}", full, workdir / "sqlite",
+                                 log)
+        figures.update(got)
+        details["backends"]["sqlite"] = about
+        if full:
+            with postgres_database() as (url, reason):
+                if url is None:
+                    details["postgresql_not_run"] = reason
+                    figures.update({f"{name}_postgresql": f"not run: {reason}"
+                                    for name in FIGURES})
                 else:
-                    try:
-                        got = poll(client, server, wrk, 15 if full else 2, 16, log)
-                        details["poll"] = got
-                        figures["speed.poll_requests_per_s"] = got["requests_per_s"]
-                        figures["speed.poll_p99_ms"] = got["p99_ms"]
-                    except Exception as error:
-                        figures["speed.poll_requests_per_s"] = f"not run: {error}"
-                count = 1000 if full else 10
-                try:
-                    got = reanalysis(server.base, server.token, count, log)
-                    details["reanalysis"] = got
-                    figures["scale.reanalysis_1000_experiments_s"] = (
-                        got["seconds"] if count == 1000 else got["seconds_per_1000"])
-                    if count != 1000:
-                        details["reanalysis"]["note"] = (
-                            f"quick run: {count} experiments, scaled to 1000")
-                except Exception as error:
-                    figures["scale.reanalysis_1000_experiments_s"] = f"not run: {error}"
-                client.close()
-            finally:
-                server.stop()
-                details["server_log_tail"] = server.log_tail()[-400:]
+                    log("  on postgresql")
+                    got, about = run_backend(url, full, workdir / "postgresql", log)
+                    figures.update({f"{name}_postgresql": value for name, value in got.items()})
+                    details["backends"]["postgresql"] = about
     except Exception as error:
         return not_run(f"{type(error).__name__}: {error}")
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
-    for name in FIGURES:
-        figures.setdefault(name, "not run: see details")
     return {"figures": figures, "details": details}

@@ -50,6 +50,8 @@ GOALS: dict[str, tuple[str, Any]] = {
     "speed.poll_requests_per_s": (">=", 1_000),
     "scale.reanalysis_1000_experiments_s": ("<=", 60),
 }
+# The service figures are measured on the default SQLite database and again on PostgreSQL.
+GOALS |= {f"{name}_postgresql": GOALS[name] for name in http_bench.FIGURES}
 
 
 def machine() -> dict[str, Any]:
@@ -160,6 +162,43 @@ def _fmt(value: Any) -> str:
     if isinstance(value, dict):
         return ", ".join(f"{k}: {_fmt(v)}" for k, v in value.items())
     return str(value)
+
+
+def http_markdown(backend: str, hp: dict[str, Any]) -> list[str]:
+    steal = hp.get("cpu_steal_share")
+    lines = ["", f"### On {backend}", "",
+             f"`inrush serve` with one worker on 127.0.0.1, database {backend}; load generator "
+             f"wrk: {hp.get('wrk')}. CPU time taken by the hypervisor meanwhile (steal): "
+             f"{'unknown' if steal is None else f'{100 * steal:.0f}%'}."]
+    ingest = hp.get("ingest")
+    if ingest:
+        lines += ["", f"Ingest: {ingest['rows_per_request']:,} rows per PUT "
+                  f"({ingest['csv_bytes']:,} bytes as CSV), the whole request timed "
+                  "(validation, upsert, the diagnosis it re-runs).", "",
+                  "| format | rows/s (median) | fresh uploads (s) | re-sent uploads (s) |",
+                  "|---|---|---|---|"]
+        for fmt in ("csv", "json"):
+            x = ingest[fmt]
+            lines.append(f"| {fmt} | {x['rows_per_s_median']:,.0f} | "
+                         + ", ".join(f"{t:.2f}" for t in x["insert_s"]) + " | "
+                         + ", ".join(f"{t:.2f}" for t in x["replace_s"]) + " |")
+    poll = hp.get("poll")
+    if poll:
+        lines += ["", f"Polling: conditional GET of the diagnosis (answered 304), wrk "
+                  f"with {poll['threads']} thread and {poll['connections']} connections "
+                  f"for {poll['seconds']} s: {poll['requests_per_s']:,.0f} requests/s, "
+                  f"latency p50 {poll['p50_ms']} ms, p90 {poll['p90_ms']} ms, p99 "
+                  f"{poll['p99_ms']} ms; {poll['requests']:,} requests, "
+                  f"{poll['non_2xx_3xx']} not 2xx/3xx."]
+    again = hp.get("reanalysis")
+    if again:
+        lines += ["", f"Re-analysis: {again['experiments']:,} experiments of "
+                  f"{again['rows_per_experiment']}: every one re-diagnosed in "
+                  f"{again['seconds']:.1f} s (4 client connections; setting them up "
+                  f"took {again['setup_seconds']:.1f} s); statuses "
+                  f"{_fmt(again['statuses'])}."
+                  + (f" {again['note']}." if again.get("note") else "")]
+    return lines
 
 
 def write_markdown(results: dict[str, Any], path: Path) -> None:
@@ -287,37 +326,10 @@ def write_markdown(results: dict[str, Any], path: Path) -> None:
         lines += ["", "## HTTP service", ""]
         if "not_run" in hp:
             lines.append(f"Not run: {hp['not_run']}.")
-        else:
-            lines.append(f"`inrush serve` with one worker on 127.0.0.1, database "
-                         f"{hp.get('database')}; load generator wrk: {hp.get('wrk')}.")
-            ingest = hp.get("ingest")
-            if ingest:
-                lines += ["", f"Ingest: {ingest['rows_per_request']:,} rows per PUT "
-                          f"({ingest['csv_bytes']:,} bytes as CSV), the whole request timed "
-                          "(validation, upsert, the diagnosis it re-runs).", "",
-                          "| format | rows/s (median) | fresh uploads (s) | re-sent uploads (s) |",
-                          "|---|---|---|---|"]
-                for fmt in ("csv", "json"):
-                    x = ingest[fmt]
-                    lines.append(f"| {fmt} | {x['rows_per_s_median']:,.0f} | "
-                                 + ", ".join(f"{t:.2f}" for t in x["insert_s"]) + " | "
-                                 + ", ".join(f"{t:.2f}" for t in x["replace_s"]) + " |")
-            poll = hp.get("poll")
-            if poll:
-                lines += ["", f"Polling: conditional GET of the diagnosis (answered 304), wrk "
-                          f"with {poll['threads']} thread and {poll['connections']} connections "
-                          f"for {poll['seconds']} s: {poll['requests_per_s']:,.0f} requests/s, "
-                          f"latency p50 {poll['p50_ms']} ms, p90 {poll['p90_ms']} ms, p99 "
-                          f"{poll['p99_ms']} ms; {poll['requests']:,} requests, "
-                          f"{poll['non_2xx_3xx']} not 2xx/3xx."]
-            again = hp.get("reanalysis")
-            if again:
-                lines += ["", f"Re-analysis: {again['experiments']:,} experiments of "
-                          f"{again['rows_per_experiment']}: every one re-diagnosed in "
-                          f"{again['seconds']:.1f} s (4 client connections; setting them up "
-                          f"took {again['setup_seconds']:.1f} s); statuses "
-                          f"{_fmt(again['statuses'])}."
-                          + (f" {again['note']}." if again.get("note") else "")]
+        for backend, about in hp.get("backends", {}).items():
+            lines += http_markdown(backend, about)
+        if "postgresql_not_run" in hp:
+            lines += ["", f"PostgreSQL: not run ({hp['postgresql_not_run']})."]
     notes = results.get("notes") or []
     if notes:
         lines += ["", "## Notes on goals missed or not run", ""] + [f"- {n}" for n in notes]

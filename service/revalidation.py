@@ -20,6 +20,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from sqlalchemy import Select, bindparam, select
+from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import Headers
 from starlette.routing import BaseRoute
@@ -65,12 +66,13 @@ def current_tag(database: Database, settings: Settings, authorization: str,
     if scheme.lower() != "bearer" or not token.strip():
         return None
     admin = settings.admin_token.get_secret_value() if settings.admin_token else None
-    with database.sessions() as session:
+    # Two single-row reads need no transaction: autocommit saves the BEGIN and ROLLBACK.
+    with database.engine.connect().execution_options(isolation_level="AUTOCOMMIT") as connection, \
+            Session(bind=connection) as session:
         principal = authenticate(session, token.strip(), admin)
         if principal is None or principal.scope < TokenScope.read:
             return None
-        row = session.connection().execute(_LATEST_TAG[document],
-                                           {"experiment_id": experiment_id}).first()
+        row = connection.execute(_LATEST_TAG[document], {"experiment_id": experiment_id}).first()
     if row is None or row[1] is None or not etag_matches(if_none_match, row[1]):
         return None
     return _Current(row[1], row[0], principal.name)

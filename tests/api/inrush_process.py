@@ -23,12 +23,19 @@ def free_port() -> int:
 
 
 @contextlib.contextmanager
-def inrush_serve(tmp_path: Path, *, workers: int = 1,
-                 env: dict[str, str] | None = None) -> Iterator[tuple[str, str]]:
-    """``(base_url, admin_token)`` of a running server on a fresh SQLite database."""
-    port, token = free_port(), secrets.token_urlsafe(16)
+def inrush_serve(tmp_path: Path, *, workers: int = 1, env: dict[str, str] | None = None,
+                 database_url: str | None = None, token: str | None = None,
+                 arguments: tuple[str, ...] = (), clean_log: bool = False
+                 ) -> Iterator[tuple[str, str]]:
+    """``(base_url, admin_token)`` of a running server (default: on a fresh SQLite database).
+
+    ``arguments`` go to ``inrush serve``; with ``clean_log`` the test fails if the server's
+    log shows a traceback once it has stopped.
+    """
+    port, token = free_port(), token or secrets.token_urlsafe(16)
     base = f"http://127.0.0.1:{port}"
-    environment = {**os.environ, "INRUSH_DATABASE_URL": f"sqlite:///{tmp_path / 'inrush.db'}",
+    environment = {**os.environ,
+                   "INRUSH_DATABASE_URL": database_url or f"sqlite:///{tmp_path / 'inrush.db'}",
                    "INRUSH_ADMIN_TOKEN": token, "INRUSH_PUBLIC_URL": base,
                    "INRUSH_NOTIFY_WORKER": "0", **(env or {})}
     environment.pop("PROMETHEUS_MULTIPROC_DIR", None)
@@ -36,7 +43,7 @@ def inrush_serve(tmp_path: Path, *, workers: int = 1,
     with log_path.open("wb") as log:
         process = subprocess.Popen(
             [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port",
-             str(port), "--workers", str(workers)],
+             str(port), "--workers", str(workers), *arguments],
             env=environment, stdout=log, stderr=subprocess.STDOUT)
         try:
             deadline = time.monotonic() + 60
@@ -57,3 +64,6 @@ def inrush_serve(tmp_path: Path, *, workers: int = 1,
             except subprocess.TimeoutExpired:
                 process.kill()
                 process.wait(10)
+    if clean_log:
+        log_text = log_path.read_text()
+        assert "Traceback" not in log_text, log_text[:4000]

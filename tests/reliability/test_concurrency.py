@@ -10,25 +10,23 @@ final rows, and each notification delivered exactly once.
 
 from __future__ import annotations
 
-import contextlib
 import io
 import json
 import os
-import socket
 import subprocess
 import sys
 import threading
 import time
 from collections import Counter
 from collections.abc import Iterator
-from dataclasses import dataclass, field
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 from typing import Any
 
 import httpx
 import pandas as pd
 import pytest
+from inrush_process import inrush_serve
+from notify_receiver import Receiver, running_receiver
 from sqlalchemy import func, select
 
 from service.db.models import Alert, AlertEvent, DiagnosisSnapshot, Observation
@@ -45,93 +43,19 @@ EXPERIMENT_ID = scenario.EXPERIMENT_ID
 TOKEN = "concurrency-admin-token"
 
 
-@dataclass
-class Receiver:
-    url: str
-    ids: list[str] = field(default_factory=list)
-    lock: threading.Lock = field(default_factory=threading.Lock)
-
-    def received(self) -> list[str]:
-        with self.lock:
-            return list(self.ids)
-
-
-@contextlib.contextmanager
-def webhook_receiver() -> Iterator[Receiver]:
-    """Answers every POST with 200 and keeps its ``webhook-id``."""
-    receiver: Receiver
-
-    class Handler(BaseHTTPRequestHandler):
-        def do_POST(self) -> None:
-            self.rfile.read(int(self.headers.get("content-length", "0")))
-            with receiver.lock:
-                receiver.ids.append(self.headers.get("webhook-id", ""))
-            self.send_response(200)
-            self.send_header("Content-Length", "0")
-            self.end_headers()
-
-        def log_message(self, *args: object) -> None:
-            pass
-
-    server = ThreadingHTTPServer(("127.0.0.1", 0), Handler)
-    receiver = Receiver(url=f"http://127.0.0.1:{server.server_address[1]}/larkspur/hook")
-    thread = threading.Thread(target=server.serve_forever, daemon=True)
-    thread.start()
-    try:
-        yield receiver
-    finally:
-        server.shutdown()
-        server.server_close()
-        thread.join(5)
-
-
-def _free_port() -> int:
-    with contextlib.closing(socket.socket(socket.AF_INET, socket.SOCK_STREAM)) as sock:
-        sock.bind(("127.0.0.1", 0))
-        return int(sock.getsockname()[1])
-
-
-def _environment(database_url: str, base: str) -> dict[str, str]:
-    environment = {**os.environ, "INRUSH_DATABASE_URL": database_url,
-                   "INRUSH_ADMIN_TOKEN": TOKEN, "INRUSH_PUBLIC_URL": base,
-                   "INRUSH_NOTIFY_WORKER": "1", "INRUSH_NOTIFY_POLL_SECONDS": "0.2",
-                   "INRUSH_WEBHOOK_ALLOW_HOSTS": "127.0.0.1"}
-    environment.pop("PROMETHEUS_MULTIPROC_DIR", None)
-    return environment
-
-
 @pytest.fixture
 def server(database_url: str, tmp_path: Path) -> Iterator[str]:
     """The base URL of ``inrush serve --workers 2`` on a fresh database of the backend."""
-    port = _free_port()
-    base = f"http://127.0.0.1:{port}"
-    log_path = tmp_path / "server.log"
-    with log_path.open("wb") as log:
-        process = subprocess.Popen(
-            [sys.executable, "-m", "service.cli", "serve", "--host", "127.0.0.1", "--port",
-             str(port), "--workers", "2", "--log-level", "warning"],
-            env=_environment(database_url, base), stdout=log, stderr=subprocess.STDOUT)
-        try:
-            deadline = time.monotonic() + 60
-            while True:
-                if process.poll() is not None:
-                    pytest.fail("server exited:\n" + log_path.read_text())
-                with contextlib.suppress(httpx.HTTPError):
-                    if httpx.get(f"{base}/healthz", timeout=2).status_code == 200:
-                        break
-                if time.monotonic() > deadline:
-                    pytest.fail("server did not start:\n" + log_path.read_text())
-                time.sleep(0.2)
-            yield base
-        finally:
-            process.terminate()
-            try:
-                process.wait(20)
-            except subprocess.TimeoutExpired:
-                process.kill()
-                process.wait(10)
-    log_text = log_path.read_text()
-    assert "Traceback" not in log_text, log_text[:4000]
+    with inrush_serve(tmp_path, workers=2, database_url=database_url, token=TOKEN,
+                      arguments=("--log-level", "warning"), clean_log=True, env={
+                          "INRUSH_NOTIFY_WORKER": "1", "INRUSH_NOTIFY_POLL_SECONDS": "0.2",
+                          "INRUSH_WEBHOOK_ALLOW_HOSTS": "127.0.0.1"}) as (base, _):
+        yield base
+
+
+def _webhook_ids(receiver: Receiver) -> list[str]:
+    with receiver.lock:
+        return [request.headers.get("webhook-id", "") for request in receiver.requests]
 
 
 def _json_body(frame: pd.DataFrame) -> bytes:
@@ -180,12 +104,13 @@ def test_concurrent_writers_lose_nothing_and_duplicate_nothing(
                 with answers_lock:
                     answers.append((thread, sequence, answer))
 
-    with webhook_receiver() as receiver:
+    with running_receiver() as receiver:
         created = httpx.post(f"{server}/v1/experiments", headers=headers, timeout=30, json={
             "id": EXPERIMENT_ID, "title": scenario.TITLE, "start_date": scenario.START.isoformat(),
             "arms": list(scenario.ARMS),
             "allocation": [{"from": scenario.START.isoformat(), "weights": [0.5, 0.5]}],
-            "notify": {"webhook_url": receiver.url, "secret": "larkspur-trails-hook"}})
+            "notify": {"webhook_url": f"{receiver.url}/larkspur/hook",
+                       "secret": "larkspur-trails-hook"}})
         assert created.status_code == 201, created.text
 
         threads = [threading.Thread(target=writer, args=(t,)) for t in range(THREADS)]
@@ -195,7 +120,9 @@ def test_concurrent_writers_lose_nothing_and_duplicate_nothing(
         time.sleep(1.0)
         reanalysis = subprocess.run(
             [sys.executable, "-m", "service.cli", "reanalyze", "--all", "--no-progress"],
-            env=_environment(database_url, server), capture_output=True, text=True, timeout=90)
+            env={**{k: v for k, v in os.environ.items() if k != "PROMETHEUS_MULTIPROC_DIR"},
+                 "INRUSH_DATABASE_URL": database_url},
+            capture_output=True, text=True, timeout=90)
         for thread in threads:
             thread.join(90)
         assert reanalysis.returncode == 0, reanalysis.stdout + reanalysis.stderr
@@ -298,6 +225,6 @@ def _check_alerts_and_notifications(database: Database, receiver: Receiver,
     assert all(count == 1 for *_, count in identities), identities
     assert queued == transitions
     # Two worker processes poll the same outbox: each event reached the receiver once.
-    received = Counter(receiver.received())
+    received = Counter(_webhook_ids(receiver))
     assert set(received) == set(delivered)
     assert all(count == 1 for count in received.values()), received.most_common(3)
