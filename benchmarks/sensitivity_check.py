@@ -21,6 +21,7 @@ import numpy as np
 
 from detectors import DiagnosisConfig
 from detectors.sensitivity import sensitivity
+from detectors.sequential import sequential_srm
 from detectors.srm import scan_windows
 
 HERE = Path(__file__).parent
@@ -64,6 +65,62 @@ def simulate_rate(case: Case, inflow: float, *, days: int = 28, reps: int = 1000
     return hits / reps
 
 
+@dataclass(frozen=True)
+class PeriodCase:
+    name: str
+    weights: tuple[float, ...]
+    units_per_day: int
+    days: int
+    arm: int
+
+
+PERIOD_CASES = (
+    PeriodCase("2 arms 50/50, 10,000/day, 28 days", (0.5, 0.5), 10_000, 28, 1),
+    PeriodCase("2 arms 90/10, 10,000/day, 28 days, the 10% arm", (0.9, 0.1), 10_000, 28, 1),
+    PeriodCase("3 arms equal, 6,000/day, 14 days", (1 / 3, 1 / 3, 1 / 3), 6_000, 14, 2),
+)
+
+
+def simulate_period_rate(case: PeriodCase, shift: float, *, reps: int = 1000,
+                         seed: int = 13) -> float:
+    rng = np.random.default_rng(seed)
+    config = DiagnosisConfig()
+    weights = np.array(case.weights)
+    shifted = weights * (1.0 - shift * weights[case.arm] / (1.0 - weights[case.arm]))
+    shifted[case.arm] = weights[case.arm] * (1.0 + shift)
+    planned = np.tile(weights, (case.days, 1))
+    hits = 0
+    for _ in range(reps):
+        totals = rng.poisson(case.units_per_day, case.days)
+        counts = np.array([rng.multinomial(n, shifted) for n in totals], dtype=float)
+        result = sequential_srm(counts, planned, config.sequential_concentration)
+        hits += result.final_p_value < config.alpha
+    return hits / reps
+
+
+def run_period(reps: int = 1000) -> list[dict[str, object]]:
+    config = DiagnosisConfig()
+    rows = []
+    for case in PERIOD_CASES:
+        weights = np.array(case.weights)
+        baseline = np.tile(weights * case.units_per_day, (case.days, 1))
+        arms = [f"arm{i}" for i in range(len(weights))]
+        stated = sensitivity(baseline, np.tile(weights, (case.days, 1)), arms, days=1,
+                             alpha=config.scan_alpha, max_window=config.max_window,
+                             overall_alpha=config.alpha,
+                             concentration=config.sequential_concentration)
+        shift = stated.whole_period[case.arm].relative_share_shift
+        assert shift is not None
+        rows.append({
+            "case": case.name, "stated_relative_shift": round(shift, 5),
+            "stated_power": stated.power,
+            "simulated_rate": simulate_period_rate(case, shift, reps=reps),
+            "simulated_rate_at_half_shift": simulate_period_rate(case, shift / 2, reps=reps),
+            "reps": reps,
+        })
+    return rows
+
+
 def run(reps: int = 1000) -> list[dict[str, object]]:
     config = DiagnosisConfig()
     rows = []
@@ -85,7 +142,7 @@ def run(reps: int = 1000) -> list[dict[str, object]]:
     return rows
 
 
-def write(rows: list[dict[str, object]]) -> None:
+def write(rows: list[dict[str, object]], period_rows: list[dict[str, object]]) -> None:
     lines = [START, "## Sensitivity: stated vs simulated detection rate", "",
              "Command: `python -m benchmarks.sensitivity_check`. Stated size from "
              "`detectors.sensitivity` (80% power, scan level and window of `DiagnosisConfig`); "
@@ -97,6 +154,14 @@ def write(rows: list[dict[str, object]]) -> None:
         lines.append(f"| {row['case']} | {row['stated_units_per_day']:,} | "
                      f"{100 * float(row['stated_share_of_arm_traffic']):.1f}% | "  # type: ignore[arg-type]
                      f"{row['simulated_rate']:.3f} | {row['simulated_rate_at_half_size']:.3f} |")
+    lines += ["", "Whole period: stated relative shift of one arm's share for the anytime-valid "
+              "overall test (overall level of `DiagnosisConfig`), simulated rate of that test "
+              "read at the end of the period with the shift applied to every day.", "",
+              "| case | stated relative shift | simulated rate | at half the shift |",
+              "|---|---|---|---|"]
+    for row in period_rows:
+        lines.append(f"| {row['case']} | {100 * float(row['stated_relative_shift']):.2f}% | "  # type: ignore[arg-type]
+                     f"{row['simulated_rate']:.3f} | {row['simulated_rate_at_half_shift']:.3f} |")
     lines += ["", f"{rows[0]['reps']} simulated experiments per row.", END]
     results_md = HERE / "RESULTS.md"
     text = results_md.read_text() if results_md.exists() else "# Benchmark results\n"
@@ -110,11 +175,12 @@ def write(rows: list[dict[str, object]]) -> None:
     results_json = HERE / "results.json"
     figures = json.loads(results_json.read_text()) if results_json.exists() else {}
     figures["sensitivity.stated_vs_simulated"] = rows
+    figures["sensitivity.whole_period_stated_vs_simulated"] = period_rows
     results_json.write_text(json.dumps(figures, indent=2) + "\n")
 
 
 if __name__ == "__main__":
-    table = run()
-    write(table)
-    for item in table:
+    table, period_table = run(), run_period()
+    write(table, period_table)
+    for item in [*table, *period_table]:
         print(item)

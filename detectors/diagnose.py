@@ -347,8 +347,8 @@ def _flagged_days(windows: Sequence[Window], day_p: np.ndarray, counts: np.ndarr
                 f"plan ({100 * day_excess[inflow_arm] / max(expected[day, inflow_arm], 1):+.1f}%"
                 f"), as if about {inflow:.0f} extra units had entered it alone",
                 f"window {start.isoformat()}..{end.isoformat()}: chi-square p = "
-                f"{window.p_value:.2g}, Holm-adjusted over {_plural(window, config)} "
-                f"p = {window.adjusted_p_value:.2g}",
+                f"{window.p_value:.2g}, Holm-adjusted over all windows of "
+                f"1-{config.max_window} days p = {window.adjusted_p_value:.2g}",
             ]
             if shares:
                 top = shares[0]
@@ -362,10 +362,6 @@ def _flagged_days(windows: Sequence[Window], day_p: np.ndarray, counts: np.ndarr
                 float(max(day_excess[inflow_arm], 0.0) / (1.0 - planned[day, inflow_arm])),
                 shares, hits, tuple(reasons)))
     return tuple(flagged)
-
-
-def _plural(window: Window, config: DiagnosisConfig) -> str:
-    return f"all windows of 1-{config.max_window} days"
 
 
 def _status(srm: SrmSummary, flagged: Sequence[FlaggedDay], sources: Sequence[SourceSummary],

@@ -20,10 +20,17 @@ noncentrality ``lambda = sum_b (O_b - E_b)^2 / E_b = K x^2 (1 - w_a) / ((N + x) 
 Only the window that matches the inflow is counted, so the figure is slightly conservative:
 neighbouring windows overlapping the inflow can also fire.
 
-The whole-period figure answers the same question for the overall test at ``alpha`` (no
-multiplicity): the smallest relative shift ``delta`` of one arm's share, the others scaling
-down in proportion, caught with the target power over the ``T`` units seen so far:
-``lambda = T W_a delta^2 / (1 - W_a)`` with ``W`` the planned shares of the period.
+The whole-period figure answers the same question for the test that decides the whole-period
+alert: the anytime-valid Dirichlet-multinomial Bayes factor (:mod:`detectors.sequential`) at
+``overall_alpha``. It is the smallest relative shift ``delta`` of one arm's share, the others
+scaling down in proportion, caught with the target power over the ``T`` units seen so far.
+The shift moves the counts along one direction, on which the Pearson statistic is
+``X^2 = T W_a delta^2 / (1 - W_a)`` (``W``: the planned shares of the period); the Bayes
+factor computed exactly along it (``scipy.special.gammaln``) crosses ``1 / overall_alpha`` at
+a critical ``X^2 = k``, and the power is ``P(ncx2(A - 1, lambda) > k)`` with ``lambda`` the
+shift's own ``X^2``. Only the Bayes factor at the end of the period is counted (the test also
+fires if it crossed earlier) and one martingale stands for the ramp's product of them, so
+this figure, too, is slightly conservative.
 
 Example:
     >>> import numpy as np
@@ -44,6 +51,7 @@ import numpy as np
 from scipy import optimize, stats
 
 from .errors import InputError, Problem
+from .sequential import DEFAULT_CONCENTRATION, log_bayes_factor
 
 WEIGHT_TOLERANCE = 1e-6
 MAX_WINDOW_LIMIT = 31
@@ -83,6 +91,7 @@ class Sensitivity:
     window_days: int
     power: float
     alpha: float
+    overall_alpha: float
     max_window: int
     family_size: int
     baseline_units_per_day: float
@@ -107,10 +116,12 @@ class Sensitivity:
         worst = self.whole_period_worst
         if worst.relative_share_shift is None:
             period = (f"the {_days(self.period_days)} so far hold too few units for the overall "
-                      f"test to reach {100 * self.power:.0f}% power")
+                      f"test to reach {100 * self.power:.0f}% power (anytime-valid, p < "
+                      f"{self.overall_alpha:g})")
         else:
-            period = (f"over the {_days(self.period_days)} so far the overall test catches an arm "
-                      f"share off by {100 * worst.relative_share_shift:.1f}% relative (about "
+            period = (f"over the {_days(self.period_days)} so far the overall test "
+                      f"(anytime-valid, p < {self.overall_alpha:g}) catches an arm share off by "
+                      f"{100 * worst.relative_share_shift:.1f}% relative (about "
                       f"{worst.units:,.0f} units into {worst.arm})")
         return (f"With about {self.baseline_units_per_day:,.0f} units a day, Inrush flags an "
                 f"inflow held for {held} with {100 * self.power:.0f}% probability once it "
@@ -140,6 +151,7 @@ class Sensitivity:
             "window_days": self.window_days,
             "power": self.power,
             "alpha": self.alpha,
+            "overall_alpha": self.overall_alpha,
             "max_window": self.max_window,
             "family_size": self.family_size,
             "baseline_units_per_day": round(self.baseline_units_per_day, 2),
@@ -241,7 +253,8 @@ def smallest_inflow(baseline: float, weights: Sequence[float] | np.ndarray, arm:
 
 def sensitivity(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[str], *, days: int,
                 alpha: float = 0.0005, max_window: int = 7, power: float = 0.8,
-                baseline_days: int = 14) -> Sensitivity:
+                baseline_days: int = 14, overall_alpha: float = 0.0005,
+                concentration: float = DEFAULT_CONCENTRATION) -> Sensitivity:
     """Smallest one-arm inflow over ``days`` consecutive days flagged with ``power`` probability.
 
     ``daily_counts`` and ``planned`` are ``(days, arms)``: units per day and arm, and the weights
@@ -249,6 +262,8 @@ def sensitivity(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[st
     days with units, split by the weights of the last day with units. The family size is the
     number of windows :func:`detectors.srm.scan_windows` tests on these days (windows holding
     units); when ``days`` is longer than the data, that of a ``days``-day experiment.
+    ``alpha`` is the window scan's family level; ``overall_alpha`` and ``concentration`` are
+    those of the anytime-valid whole-period test.
 
     Example:
         >>> import numpy as np
@@ -258,7 +273,8 @@ def sensitivity(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[st
         [802, 82]
     """
     counts, weights_by_day, arm_names = _validate(daily_counts, planned, arms, days, alpha,
-                                                  max_window, power, baseline_days)
+                                                  max_window, power, baseline_days,
+                                                  overall_alpha, concentration)
     totals = counts.sum(axis=1)
     active = np.flatnonzero(totals > 0)
     recent = active[-baseline_days:]
@@ -277,19 +293,79 @@ def sensitivity(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[st
     period_units = int(np.rint(totals.sum()))
     period_shares = [float(v) for v in
                      (totals[:, None] * weights_by_day).sum(axis=0) / totals.sum()]
-    needed = required_noncentrality(len(arm_names) - 1, alpha, power)
     shifts = []
-    for arm, share in zip(arm_names, period_shares, strict=True):
-        delta = math.sqrt(needed * (1.0 - share) / (period_units * share))
-        possible = share * (1.0 + delta) < 1.0
-        shifts.append(ShareShiftSensitivity(arm, delta if possible else None,
-                                            period_units * share * delta if possible else None))
+    for index, (arm, share) in enumerate(zip(arm_names, period_shares, strict=True)):
+        delta = smallest_share_shift(period_units, period_shares, index, overall_alpha, power,
+                                     concentration)
+        units = None if delta is None else period_units * share * delta
+        shifts.append(ShareShiftSensitivity(arm, delta, units))
     return Sensitivity(
-        days=days, window_days=window, power=power, alpha=alpha, max_window=max_window,
+        days=days, window_days=window, power=power, alpha=alpha, overall_alpha=overall_alpha,
+        max_window=max_window,
         family_size=family, baseline_units_per_day=baseline, baseline_days_used=int(recent.size),
         weights=dict(zip(arm_names, weights, strict=True)),
         arms=tuple(inflows), whole_period=tuple(shifts), period_days=int(counts.shape[0]),
         period_units=period_units)
+
+
+def _shifted_counts(total: float, shares: np.ndarray, arm: int, delta: float) -> np.ndarray:
+    """Counts of ``total`` units with ``arm``'s share raised by ``delta`` (relative), the other
+    arms' shares scaled down in proportion."""
+    shifted = shares * (1.0 - delta * shares[arm] / (1.0 - shares[arm]))
+    shifted[arm] = shares[arm] * (1.0 + delta)
+    return total * shifted
+
+
+def sequential_critical_statistic(total: float, shares: Sequence[float] | np.ndarray, arm: int,
+                                  alpha: float, concentration: float = DEFAULT_CONCENTRATION
+                                  ) -> float | None:
+    """Pearson ``X^2`` at which the anytime-valid Bayes factor of ``total`` units, shifted
+    towards ``arm``, reaches ``1 / alpha`` (``None`` if no shift within the simplex does).
+
+    Example:
+        >>> round(sequential_critical_statistic(280_000, [0.5, 0.5], 1, 0.0005), 1)
+        20.9
+    """
+    weights = np.asarray(shares, dtype=float)
+    target = math.log(1.0 / alpha)
+    limit = (1.0 - weights[arm]) / weights[arm]  # the arm's share cannot pass 1
+
+    def gap(delta: float) -> float:
+        counts = _shifted_counts(total, weights, arm, delta)[None, :]
+        return float(log_bayes_factor(counts, weights, concentration)[0]) - target
+
+    upper = min(limit, 1e-3)
+    while gap(upper) < 0:
+        if upper >= limit * 0.999:
+            return None
+        upper = min(limit * 0.999, upper * 2.0)
+    delta = float(optimize.brentq(gap, 0.0, upper, xtol=1e-14, rtol=1e-12))
+    return float(total * weights[arm] * delta * delta / (1.0 - weights[arm]))
+
+
+def smallest_share_shift(total: float, shares: Sequence[float] | np.ndarray, arm: int,
+                         alpha: float, power: float,
+                         concentration: float = DEFAULT_CONCENTRATION) -> float | None:
+    """Smallest relative shift of ``arm``'s share that the anytime-valid whole-period test at
+    ``alpha`` catches with ``power`` over ``total`` units (``None`` when none can).
+
+    Example:
+        >>> round(smallest_share_shift(280_000, [0.5, 0.5], 1, 0.0005, 0.8), 4)
+        0.0102
+    """
+    weights = np.asarray(shares, dtype=float)
+    if total <= 0:
+        return None
+    critical = sequential_critical_statistic(total, weights, arm, alpha, concentration)
+    if critical is None:
+        return None
+    df = len(weights) - 1
+    scale = total * weights[arm] / (1.0 - weights[arm])  # X^2 = scale * delta^2
+    needed = float(optimize.brentq(lambda nc: stats.ncx2.sf(critical, df, nc) - power, 1e-9,
+                                   max(4.0 * critical, 100.0), xtol=1e-10, rtol=1e-12)) \
+        if stats.chi2.sf(critical, df) < power else 0.0
+    delta = math.sqrt(needed / scale)
+    return delta if weights[arm] * (1.0 + delta) < 1.0 else None
 
 
 def _tested_windows(totals: np.ndarray, max_window: int) -> int:
@@ -301,7 +377,8 @@ def _tested_windows(totals: np.ndarray, max_window: int) -> int:
 
 
 def _validate(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[str], days: int,
-              alpha: float, max_window: int, power: float, baseline_days: int
+              alpha: float, max_window: int, power: float, baseline_days: int,
+              overall_alpha: float, concentration: float
               ) -> tuple[np.ndarray, np.ndarray, tuple[str, ...]]:
     problems: list[Problem] = []
     counts = np.asarray(daily_counts, dtype=float)
@@ -335,6 +412,11 @@ def _validate(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[str]
         problems.append(Problem("alpha", "must be between 0 and 1"))
     if not _fraction(power) or (_fraction(alpha) and power <= alpha):
         problems.append(Problem("power", "must be between alpha and 1"))
+    if not _fraction(overall_alpha) or (_fraction(power) and power <= overall_alpha):
+        problems.append(Problem("overall_alpha", "must be between 0 and power"))
+    if not isinstance(concentration, int | float) or not math.isfinite(concentration) \
+            or concentration <= 0:
+        problems.append(Problem("concentration", "must be a finite number > 0"))
     if problems:
         raise InputError(problems)
     return counts, weights, arm_names
@@ -357,6 +439,17 @@ def _round(value: float | None, digits: int) -> float | None:
     return None if value is None else round(value, digits)
 
 
-__all__ = ["InflowSensitivity", "Sensitivity", "ShareShiftSensitivity", "chisquare_power",
-           "inflow_noncentrality", "inflow_power", "required_noncentrality", "sensitivity",
-           "smallest_inflow", "window_family_size"]
+__all__ = [
+    "InflowSensitivity",
+    "Sensitivity",
+    "ShareShiftSensitivity",
+    "chisquare_power",
+    "inflow_noncentrality",
+    "inflow_power",
+    "required_noncentrality",
+    "sensitivity",
+    "sequential_critical_statistic",
+    "smallest_inflow",
+    "smallest_share_shift",
+    "window_family_size",
+]

@@ -157,6 +157,17 @@ def _empty(title: str, message: str) -> str:
         return _to_svg(figure, title)
 
 
+def _finish_daily(ax: Axes, title: str, ylabel: str, flagged: list[Patch], *, ncol: int) -> None:
+    """Title, axis labels, date ticks and a legend below holding the flagged-day handles."""
+    ax.set_title(title)
+    ax.set_xlabel("Day of entry")
+    ax.set_ylabel(ylabel)
+    _date_axis(ax)
+    existing, labels = ax.get_legend_handles_labels()
+    ax.legend(existing + flagged, labels + [h.get_label() for h in flagged], ncol=ncol,
+              loc="upper center", bbox_to_anchor=(0.5, -0.2))
+
+
 def share_chart(series: Mapping[str, Any]) -> str:
     """Observed daily share of each arm against its planned share, flagged days hatched."""
     title = "Arm shares against the plan"
@@ -176,14 +187,8 @@ def share_chart(series: Mapping[str, Any]) -> str:
                     marker=look.marker, markersize=4, linewidth=1.6, label=f"{arm}: observed")
             ax.step(dates, planned, where="mid", color=look.color, linestyle=(0, (2, 2)),
                     linewidth=1.0, alpha=0.8, label=f"{arm}: planned")
-        ax.set_title(title)
-        ax.set_xlabel("Day of entry")
-        ax.set_ylabel("Share of the day's units")
         ax.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
-        _date_axis(ax)
-        existing, labels = ax.get_legend_handles_labels()
-        ax.legend(existing + handles, labels + [h.get_label() for h in handles],
-                  ncol=3, loc="upper center", bbox_to_anchor=(0.5, -0.2))
+        _finish_daily(ax, title, "Share of the day's units", handles, ncol=3)
         return _to_svg(figure, title)
 
 
@@ -234,13 +239,7 @@ def engagement_chart(series: Mapping[str, Any], metric: str) -> str:
             values = [_nan(d["arms"][arm]["engagement"].get(metric)) for d in days]
             ax.plot(dates, values, color=look.color, linestyle=look.linestyle,
                     marker=look.marker, markersize=4, linewidth=1.6, label=arm)
-        ax.set_title(title)
-        ax.set_xlabel("Day of entry")
-        ax.set_ylabel(f"Mean {metric} per entrant")
-        _date_axis(ax)
-        existing, labels = ax.get_legend_handles_labels()
-        ax.legend(existing + handles, labels + [h.get_label() for h in handles], ncol=4,
-                  loc="upper center", bbox_to_anchor=(0.5, -0.2))
+        _finish_daily(ax, title, f"Mean {metric} per entrant", handles, ncol=4)
         return _to_svg(figure, title)
 
 

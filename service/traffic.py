@@ -80,7 +80,9 @@ def sensitivity_document(traffic: ArmTraffic, *, days: int = DEFAULT_SENSITIVITY
     defaults = DiagnosisConfig()
     result = sensitivity(traffic.counts, traffic.planned, traffic.arms, days=days,
                          alpha=defaults.scan_alpha if alpha is None else alpha,
-                         max_window=defaults.max_window if max_window is None else max_window)
+                         max_window=defaults.max_window if max_window is None else max_window,
+                         overall_alpha=defaults.alpha,
+                         concentration=defaults.sequential_concentration)
     return json_safe({"as_of": traffic.last_date.isoformat(), **result.to_dict()})
 
 

@@ -126,11 +126,13 @@ def upsert_observations(session: Session, experiment_id: str, rows: ObservationC
                   strict=True)
     if dialect == "postgresql":
         with driver.cursor() as cursor:  # type: ignore[union-attr]
-            # Emptied at every commit; the pooled connection keeps it for the next upload.
+            # Emptied at every commit; the pooled connection keeps it for the next upload. The
+            # DELETE only matters if this transaction staged rows before (TRUNCATE would
+            # rewrite the table's files every time).
             cursor.execute(f"CREATE TEMPORARY TABLE IF NOT EXISTS {_STAGING} (date date, "
                            "arm text, source text, entered bigint, metrics jsonb, "
                            "PRIMARY KEY (date, arm, source)) ON COMMIT DELETE ROWS")
-            cursor.execute(f"TRUNCATE {_STAGING}")
+            cursor.execute(f"DELETE FROM {_STAGING}")
             with cursor.copy(f"COPY {_STAGING} (date, arm, source, entered, metrics) "
                              "FROM STDIN") as copy:
                 for record in records:

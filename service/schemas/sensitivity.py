@@ -26,8 +26,9 @@ class WholePeriodSensitivity(BaseModel):
     total_units: int
     arm: str = Field(description="the arm needing the largest shift (the figure quoted)")
     relative_share_shift: float | None = Field(
-        description="smallest relative shift of its share the overall test catches with "
-                    "`power` (null: none that small is possible)")
+        description="smallest relative shift of its share the anytime-valid overall test "
+                    "catches with `power` at `overall_alpha` (null: none that small is "
+                    "possible)")
     units: float | None
     by_arm: list[ArmShareShift]
 
@@ -38,7 +39,9 @@ class SensitivityOut(BaseModel):
     window_days: int = Field(description="window the figure is computed on: min(days, "
                                          "max_window)")
     power: float
-    alpha: float = Field(description="the diagnosis's alert level")
+    alpha: float = Field(description="the window scan's alert level (family-wise, per look)")
+    overall_alpha: float = Field(description="alert level of the anytime-valid whole-period "
+                                             "test")
     max_window: int = Field(description="longest window the diagnosis scans")
     family_size: int = Field(description="windows the Holm adjustment runs over")
     baseline_units_per_day: float
