@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gc
 import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
@@ -66,6 +67,18 @@ def package_version() -> str:
         return "0.0.0"
 
 
+_frozen = False
+
+
+def _freeze_startup_objects() -> None:
+    """Keep what a process loads at startup (modules, the app) out of the cyclic collector's
+    full passes, which would otherwise re-scan it every time; once per process."""
+    global _frozen
+    if not _frozen:
+        gc.freeze()
+        _frozen = True
+
+
 def create_app(settings: Settings | None = None) -> FastAPI:
     """Build the app; without ``settings`` they are read from ``INRUSH_*`` variables."""
     settings = settings or Settings()
@@ -83,6 +96,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             await run_in_threadpool(database.migrate)
         # Webhook deliveries (INRUSH_NOTIFY_WORKER=0 leaves them to another process).
         worker = start_worker(database, notify_settings)
+        _freeze_startup_objects()
         try:
             yield
         finally:

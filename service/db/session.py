@@ -58,8 +58,10 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
 
     @event.listens_for(engine, "begin")
     def _begin(connection: Any) -> None:
-        mode = connection.get_execution_options().get(_BEGIN_OPTION, "DEFERRED")
-        connection.exec_driver_sql(f"BEGIN {mode}")
+        options = connection.get_execution_options()
+        if options.get("isolation_level") == "AUTOCOMMIT":
+            return  # each statement on its own, as asked
+        connection.exec_driver_sql(f"BEGIN {options.get(_BEGIN_OPTION, 'DEFERRED')}")
 
     return engine
 
