@@ -346,8 +346,9 @@ def run_backend(url: str, full: bool, workdir: Path, log: Callable[[str], None]
         try:
             got = ingest(client, 3 if full else 1, log)
             details["ingest"] = got
-            figures["speed.ingest_rows_per_s"] = {"csv": got["csv"]["rows_per_s_median"],
-                                                  "json": got["json"]["rows_per_s_median"]}
+            figures["speed.ingest_rows_per_s"] = {
+                "csv": round(got["csv"]["rows_per_s_median"]),
+                "json": round(got["json"]["rows_per_s_median"])}
         except Exception as error:
             figures["speed.ingest_rows_per_s"] = f"not run: {error}"
         wrk, how = find_wrk(allow_install=full)

@@ -166,7 +166,7 @@ def _fmt(value: Any) -> str:
 
 def http_markdown(backend: str, hp: dict[str, Any]) -> list[str]:
     steal = hp.get("cpu_steal_share")
-    lines = ["", f"### On {backend}", "",
+    lines = [f"### On {backend}", "",
              f"`inrush serve` with one worker on 127.0.0.1, database {backend}; load generator "
              f"wrk: {hp.get('wrk')}. CPU time taken by the hypervisor meanwhile (steal): "
              f"{'unknown' if steal is None else f'{100 * steal:.0f}%'}."]
@@ -326,8 +326,8 @@ def write_markdown(results: dict[str, Any], path: Path) -> None:
         lines += ["", "## HTTP service", ""]
         if "not_run" in hp:
             lines.append(f"Not run: {hp['not_run']}.")
-        for backend, about in hp.get("backends", {}).items():
-            lines += http_markdown(backend, about)
+        for index, (backend, about) in enumerate(hp.get("backends", {}).items()):
+            lines += ([] if index == 0 else [""]) + http_markdown(backend, about)
         if "postgresql_not_run" in hp:
             lines += ["", f"PostgreSQL: not run ({hp['postgresql_not_run']})."]
     notes = results.get("notes") or []
