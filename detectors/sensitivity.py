@@ -204,11 +204,28 @@ def required_noncentrality(df: int, level: float, power: float) -> float:
         >>> round(required_noncentrality(1, 0.05, 0.8), 2)
         7.85
     """
+    return noncentrality_beyond(float(stats.chi2.isf(level, df)), df, power)
+
+
+def noncentrality_beyond(critical: float, df: int, power: float) -> float:
+    """Smallest noncentrality at which a noncentral chi-square with ``df`` degrees of freedom
+    exceeds ``critical`` with probability ``power`` (0 when the central one already does).
+
+    Example:
+        >>> round(noncentrality_beyond(3.841459, 1, 0.8), 2)  # chi2.isf(0.05, 1)
+        7.85
+    """
+    def gap(noncentrality: float) -> float:
+        beyond = (stats.chi2.sf(critical, df) if noncentrality <= 0
+                  else stats.ncx2.sf(critical, df, noncentrality))
+        return float(beyond) - power
+
+    if gap(0.0) >= 0:
+        return 0.0
     upper = 1.0
-    while chisquare_power(upper, df, level) < power:
+    while gap(upper) < 0:
         upper *= 2.0
-    return float(optimize.brentq(lambda nc: chisquare_power(nc, df, level) - power, 0.0, upper,
-                                 xtol=1e-10, rtol=1e-12))
+    return float(optimize.brentq(gap, 0.0, upper, xtol=1e-10, rtol=1e-12))
 
 
 def inflow_noncentrality(inflow: float, baseline: float, weights: Sequence[float] | np.ndarray,
@@ -359,12 +376,8 @@ def smallest_share_shift(total: float, shares: Sequence[float] | np.ndarray, arm
     critical = sequential_critical_statistic(total, weights, arm, alpha, concentration)
     if critical is None:
         return None
-    df = len(weights) - 1
     scale = total * weights[arm] / (1.0 - weights[arm])  # X^2 = scale * delta^2
-    needed = float(optimize.brentq(lambda nc: stats.ncx2.sf(critical, df, nc) - power, 1e-9,
-                                   max(4.0 * critical, 100.0), xtol=1e-10, rtol=1e-12)) \
-        if stats.chi2.sf(critical, df) < power else 0.0
-    delta = math.sqrt(needed / scale)
+    delta = math.sqrt(noncentrality_beyond(critical, len(weights) - 1, power) / scale)
     return delta if weights[arm] * (1.0 + delta) < 1.0 else None
 
 
@@ -446,6 +459,7 @@ __all__ = [
     "chisquare_power",
     "inflow_noncentrality",
     "inflow_power",
+    "noncentrality_beyond",
     "required_noncentrality",
     "sensitivity",
     "sequential_critical_statistic",
