@@ -51,17 +51,6 @@ class ParsedBody:
     problems: list[Problem]
 
 
-@dataclass(frozen=True)
-class ValidRows:
-    """Rows ready to store, as columns, and the first and last date among them."""
-
-    columns: ObservationColumns
-    dates: tuple[dt.date, dt.date]
-
-    def __len__(self) -> int:
-        return len(self.columns)
-
-
 def parse_json_body(body: bytes, max_rows: int) -> ParsedBody:
     """The rows of ``{"rows": [...]}`` as a flat frame; shape problems raise InputError."""
     # The parse allocates a few objects per cell and nothing of it is cyclic: collecting
@@ -135,8 +124,9 @@ def parse_csv_body(body: bytes, max_rows: int) -> ParsedBody:
 
 
 def validate_rows(parsed: ParsedBody, experiment: Experiment, *, today: dt.date,
-                  future_days: int) -> ValidRows:
-    """Check every row against the experiment; raise InputError listing all problems."""
+                  future_days: int) -> ObservationColumns:
+    """Check every row against the experiment and return the rows to store; raise InputError
+    listing all problems."""
     frame, shape_problems = parsed.frame, parsed.problems
     positions = frame.index.to_numpy()
     last_accepted = today + dt.timedelta(days=future_days)
@@ -157,17 +147,17 @@ def validate_rows(parsed: ParsedBody, experiment: Experiment, *, today: dt.date,
     if problems:
         raise InputError(problems)
     assert clean is not None
-    return ValidRows(_columns(frame.reset_index(drop=True), clean, names),
-                     (clean["date"].min().date(), clean["date"].max().date()))
+    return _columns(frame.reset_index(drop=True), clean, names)
 
 
-def upsert_rows(session: Session, experiment: Experiment, rows: ValidRows) -> StagedUpload:
+def upsert_rows(session: Session, experiment: Experiment, rows: ObservationColumns
+                ) -> StagedUpload:
     """Insert or replace the rows (key: experiment, date, arm, source) in one statement.
 
     The inserted and updated counts of the result are exact because the caller holds the
     experiment's write lock (``service.db.locks``).
     """
-    return upsert_observations(session, experiment.id, rows.columns, utcnow())
+    return upsert_observations(session, experiment.id, rows, utcnow())
 
 
 def _columns(raw: pd.DataFrame, clean: pd.DataFrame, names: Sequence[str]
