@@ -87,7 +87,12 @@ class RevalidationMiddleware:
 
     def __init__(self, app: ASGIApp) -> None:
         self.app = app
-        self._routes: dict[str, BaseRoute] | None = None
+        # The routes whose answers these stand for: the access log and metrics label by them.
+        self.routes: dict[str, BaseRoute] = {
+            document: route for route in diagnosis_routes.router.routes
+            for document, path in _TEMPLATES.items()
+            if getattr(route, "path", None) == path
+            and "GET" in (getattr(route, "methods", None) or ())}
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         match = (_PATH.fullmatch(scope["path"])
@@ -111,19 +116,10 @@ class RevalidationMiddleware:
             await self.app(scope, receive, send)
             return
         scope.setdefault("state", {})["principal"] = current.principal
-        route = self._route(document)
-        if route is not None:
-            scope["route"] = route  # the access log and metrics label by route template
+        if document in self.routes:
+            scope["route"] = self.routes[document]
         await send({"type": "http.response.start", "status": 304, "headers": [
             (b"etag", current.etag.encode("latin-1")),
             (b"cache-control", REVALIDATE.encode("latin-1")),
             (b"x-inrush-diagnosis-version", str(current.version).encode("latin-1"))]})
         await send({"type": "http.response.body", "body": b""})
-
-    def _route(self, document: str) -> BaseRoute | None:
-        if self._routes is None:
-            by_path = {getattr(r, "path", None): r for r in diagnosis_routes.router.routes
-                       if "GET" in (getattr(r, "methods", None) or ())}
-            self._routes = {name: by_path[path] for name, path in _TEMPLATES.items()
-                            if path in by_path}
-        return self._routes.get(document)
