@@ -1,6 +1,7 @@
-"""Which database backends the tests run on, and a throw-away PostgreSQL database per test.
+"""Which database backends the tests run on, and a fresh database on each of them.
 
-Shared by ``tests/conftest.py`` (the ``database_url`` fixture) and the reliability tests.
+Shared by ``tests/conftest.py`` (the ``database_url`` fixture) and the reliability tests
+(``backend_url``).
 """
 
 from __future__ import annotations
@@ -10,7 +11,10 @@ import functools
 import os
 import secrets
 from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
 
+import pytest
 from sqlalchemy.engine import make_url
 
 POSTGRES_URL = os.environ.get("INRUSH_TEST_POSTGRES_URL",
@@ -20,6 +24,27 @@ POSTGRES_URL = os.environ.get("INRUSH_TEST_POSTGRES_URL",
 def wanted_backends() -> list[str]:
     return [b.strip() for b in os.environ.get("INRUSH_TEST_BACKENDS", "sqlite,postgres")
             .split(",") if b.strip()]
+
+
+def backend_params() -> list[Any]:
+    """One pytest parameter per wanted backend; PostgreSQL's carry the ``postgres`` mark."""
+    return [pytest.param(name, marks=[pytest.mark.postgres] if name == "postgres" else [],
+                         id=name) for name in wanted_backends()]
+
+
+@contextlib.contextmanager
+def backend_database(backend: str, folder: Path, prefix: str) -> Iterator[str]:
+    """The SQLAlchemy URL of a fresh, empty database: a SQLite file in ``folder``, or a
+    PostgreSQL database named ``prefix_<hex>`` and dropped afterwards. The test is skipped,
+    with the reason, when the PostgreSQL server cannot be reached."""
+    if backend == "sqlite":
+        yield f"sqlite:///{folder / 'inrush.db'}"
+        return
+    problem = postgres_problem()
+    if problem:
+        pytest.skip(problem)
+    with postgres_database(prefix) as url:
+        yield url
 
 
 def libpq(url: str) -> str:

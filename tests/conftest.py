@@ -12,30 +12,18 @@ from __future__ import annotations
 import os
 from collections.abc import Iterator
 from pathlib import Path
-from typing import Any
 
 import pytest
 
-from tests.backends import postgres_database, postgres_problem, wanted_backends
+from tests.backends import backend_database, backend_params
 
 # Apps built by tests deliver no webhooks in the background; the notification tests run the
 # delivery worker themselves, step by step.
 os.environ.setdefault("INRUSH_NOTIFY_WORKER", "0")
 
 
-def _backends() -> list[Any]:
-    return [pytest.param(name, marks=[pytest.mark.postgres] if name == "postgres" else [],
-                         id=name) for name in wanted_backends()]
-
-
-@pytest.fixture(params=_backends())
+@pytest.fixture(params=backend_params())
 def database_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
     """A fresh, empty database on each backend; the SQLAlchemy URL the service takes."""
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path / 'inrush.db'}"
-        return
-    problem = postgres_problem()
-    if problem:
-        pytest.skip(problem)
-    with postgres_database("inrush_test") as url:
+    with backend_database(request.param, tmp_path, "inrush_test") as url:
         yield url

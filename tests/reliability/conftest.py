@@ -19,13 +19,8 @@ from fastapi.testclient import TestClient
 
 from service.app import create_app
 from service.settings import Settings
-from tests.reliability.support import (
-    DEMO_CSV,
-    EXPERIMENT,
-    postgres_database,
-    postgres_problem,
-    wanted_backends,
-)
+from tests.backends import backend_database, backend_params
+from tests.reliability.support import DEMO_CSV, EXPERIMENT
 
 ADMIN_TOKEN = "rel-admin-" + secrets.token_hex(8)
 MAX_BODY_BYTES = 256 * 1024
@@ -46,22 +41,11 @@ class Seeded:
         return self.app.state.database.engine
 
 
-def _backend_params() -> list[Any]:
-    return [pytest.param(name, marks=[pytest.mark.postgres] if name == "postgres" else [],
-                         id=name) for name in wanted_backends()]
-
-
-@pytest.fixture(scope="module", params=_backend_params())
+@pytest.fixture(scope="module", params=backend_params())
 def backend_url(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory
                 ) -> Iterator[str]:
     """A fresh database for the module, on each backend."""
-    if request.param == "sqlite":
-        yield f"sqlite:///{tmp_path_factory.mktemp('db') / 'inrush.db'}"
-        return
-    problem = postgres_problem()
-    if problem:
-        pytest.skip(problem)
-    with postgres_database() as url:
+    with backend_database(request.param, tmp_path_factory.mktemp("db"), "inrush_rel") as url:
         yield url
 
 
