@@ -2,30 +2,14 @@
 
 from __future__ import annotations
 
-import functools
 import re
 import xml.etree.ElementTree as ET
-from typing import Any
 
-import pandas as pd
-
-from detectors import AllocationSchedule, ObservationTable, daily_series, diagnose, reweight
 from service import charts
 from service.demo import scenario
-from service.http import json_safe
+from tests.demo_documents import demo_documents
 
 SVG = "{http://www.w3.org/2000/svg}"
-
-
-@functools.cache
-def demo() -> tuple[dict[str, Any], dict[str, Any]]:
-    frame = pd.read_csv(scenario.CSV_PATH)
-    table = ObservationTable.from_frame(frame, list(scenario.ARMS))
-    schedule = AllocationSchedule.constant(list(scenario.ARMS))
-    diagnosis = diagnose(table, schedule, experiment=scenario.EXPERIMENT_ID)
-    effect = reweight(table, "routes_saved", target="reference_arm", by=("source", "window"),
-                      flagged_dates=list(diagnosis.alert_days))
-    return json_safe(daily_series(table, schedule, diagnosis)), json_safe(effect.to_dict())
 
 
 def texts(svg: str) -> str:
@@ -35,7 +19,7 @@ def texts(svg: str) -> str:
 
 
 def test_share_chart_has_title_axes_and_hatched_flagged_days() -> None:
-    series, _ = demo()
+    series = demo_documents().series
     svg = charts.share_chart(series)
     words = texts(svg)
     for label in ("Arm shares against the plan", "Day of entry", "Share of the day's units",
@@ -46,7 +30,7 @@ def test_share_chart_has_title_axes_and_hatched_flagged_days() -> None:
 
 
 def test_series_differ_by_dash_and_marker_not_only_colour() -> None:
-    series, _ = demo()
+    series = demo_documents().series
     svg = charts.share_chart(series)
     dashes = set(re.findall(r"stroke-dasharray: ([0-9.,\s]+)", svg))
     assert len(dashes) >= 2
@@ -55,7 +39,7 @@ def test_series_differ_by_dash_and_marker_not_only_colour() -> None:
 
 
 def test_entrants_chart_has_a_panel_per_arm_and_every_source() -> None:
-    series, _ = demo()
+    series = demo_documents().series
     words = texts(charts.entrants_chart(series))
     assert "Entrants per source and arm" in words and "Units entered" in words
     for arm in scenario.ARMS:
@@ -65,7 +49,8 @@ def test_entrants_chart_has_a_panel_per_arm_and_every_source() -> None:
 
 
 def test_engagement_and_effect_charts_are_labelled() -> None:
-    series, effect = demo()
+    documents = demo_documents()
+    series, effect = documents.series, documents.effect
     words = texts(charts.engagement_chart(series, "routes_saved"))
     assert "Entrant engagement per arm: routes_saved" in words
     assert "Mean routes_saved per entrant" in words and "Day of entry" in words
@@ -76,7 +61,7 @@ def test_engagement_and_effect_charts_are_labelled() -> None:
 
 
 def test_labels_are_escaped_and_empty_data_still_draws_a_titled_chart() -> None:
-    series, _ = demo()
+    series = demo_documents().series
     hostile = {**series, "sources": [{**series["sources"][0], "source": "<script>x</script>"}]}
     svg = charts.entrants_chart(hostile)
     assert "<script>" not in svg and "&lt;script&gt;" in svg

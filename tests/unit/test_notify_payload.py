@@ -3,28 +3,15 @@
 from __future__ import annotations
 
 import datetime as dt
-import functools
 from typing import Any
 
-import pandas as pd
-
-from detectors import AllocationSchedule, ObservationTable, diagnose
 from service.demo import scenario
-from service.http import json_safe
 from service.notify import payload as payloads
+from tests.demo_documents import demo_documents
 
 EXPERIMENT = {"id": "route-cards", "title": "Route cards on the trail list"}
 CAMPAIGN_DATES = [(scenario.START + dt.timedelta(days=d)).isoformat()
                   for d in scenario.CAMPAIGN_DAYS]
-
-
-@functools.cache
-def demo_document() -> dict[str, Any]:
-    frame = pd.read_csv(scenario.CSV_PATH)
-    table = ObservationTable.from_frame(frame, list(scenario.ARMS))
-    diagnosis = diagnose(table, AllocationSchedule.constant(list(scenario.ARMS)),
-                         experiment=scenario.EXPERIMENT_ID)
-    return json_safe(diagnosis.to_dict())
 
 
 def alert(kind: str, key: str, **extra: Any) -> dict[str, Any]:
@@ -42,7 +29,7 @@ def build(event_type: str, the_alert: dict[str, Any], document: dict[str, Any] |
 
 
 def test_overall_mismatch_names_the_campaign_days_arm_and_source() -> None:
-    document = demo_document()
+    document = demo_documents().diagnosis
     body = build(payloads.OPENED, alert("srm", "overall"), document)
     data = body["data"]
     assert body["type"] == "alert.opened" and body["id"] == "inrush-alert-7-t31"
@@ -67,7 +54,8 @@ def test_overall_mismatch_names_the_campaign_days_arm_and_source() -> None:
 
 
 def test_links_point_back_to_the_api_and_status_page() -> None:
-    links = build(payloads.OPENED, alert("srm", "overall"), demo_document())["data"]["links"]
+    document = demo_documents().diagnosis
+    links = build(payloads.OPENED, alert("srm", "overall"), document)["data"]["links"]
     assert links == {
         "diagnosis": "https://inrush.larkspur.example/v1/experiments/route-cards/diagnosis",
         "alert": "https://inrush.larkspur.example/v1/alerts/7",
@@ -77,7 +65,7 @@ def test_links_point_back_to_the_api_and_status_page() -> None:
 
 
 def test_skewed_day_and_source_pick_their_days() -> None:
-    document = demo_document()
+    document = demo_documents().diagnosis
     day = build(payloads.OPENED, alert("skewed_day", CAMPAIGN_DATES[1]), document)["data"]
     assert day["days"] == [CAMPAIGN_DATES[1]]
     one_day = next(d for d in document["flagged_days"] if d["date"] == CAMPAIGN_DATES[1])

@@ -2,34 +2,17 @@
 
 from __future__ import annotations
 
-import functools
-from typing import Any
-
-import pandas as pd
-
-from detectors import AllocationSchedule, ObservationTable, daily_series, diagnose, reweight
 from service.demo import scenario
-from service.http import json_safe
 from service.pages.render import render_experiment_page, render_index_page
+from tests.demo_documents import demo_documents
 
 EXPERIMENT = {"id": "route-cards", "title": "Route cards <b>on</b> the trail list",
               "arms": list(scenario.ARMS), "start_date": scenario.START.isoformat()}
 
 
-@functools.cache
-def documents() -> tuple[dict[str, Any], dict[str, Any], dict[str, Any]]:
-    frame = pd.read_csv(scenario.CSV_PATH)
-    table = ObservationTable.from_frame(frame, list(scenario.ARMS))
-    schedule = AllocationSchedule.constant(list(scenario.ARMS))
-    diagnosis = diagnose(table, schedule, experiment=scenario.EXPERIMENT_ID)
-    effect = reweight(table, "routes_saved", target="reference_arm", by=("source", "window"),
-                      flagged_dates=list(diagnosis.alert_days))
-    return (json_safe(diagnosis.to_dict()), json_safe(daily_series(table, schedule, diagnosis)),
-            json_safe(effect.to_dict()))
-
-
 def test_full_page_from_documents() -> None:
-    diagnosis, series, effect = documents()
+    documents = demo_documents()
+    diagnosis, series, effect = documents.diagnosis, documents.series, documents.effect
     alert = {"id": 4, "title": "2026-11-09: cards got +448 units over plan", "severity": "alert",
              "status": "acknowledged", "acknowledged_by": "trail-analyst",
              "opened_at": "2026-11-10T06:00:00+00:00"}
@@ -47,7 +30,8 @@ def test_full_page_from_documents() -> None:
 
 
 def test_page_explains_a_missing_effect_and_missing_data() -> None:
-    diagnosis, series, _ = documents()
+    documents = demo_documents()
+    diagnosis, series = documents.diagnosis, documents.series
     html = render_experiment_page(experiment=EXPERIMENT, diagnosis=diagnosis, series=series,
                                   alerts=[], reweight=None,
                                   reweight_problem="The re-weighted estimate is undefined: "
