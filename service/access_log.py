@@ -17,9 +17,9 @@ import contextvars
 import datetime as dt
 import json
 import logging
+import random
 import re
 import time
-import uuid
 from typing import Any
 from urllib.parse import parse_qsl, urlencode
 
@@ -46,7 +46,8 @@ def accepted_request_id(value: str | None) -> str:
     """The caller's id when it is acceptable, else a fresh one (32 hex digits)."""
     if value is not None and _VALID_REQUEST_ID.match(value):
         return value
-    return uuid.uuid4().hex
+    # Unique, not secret: the process's pseudo-random generator, not a system call per request.
+    return f"{random.getrandbits(128):032x}"
 
 
 def redact_query(query: str) -> str:

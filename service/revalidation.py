@@ -19,15 +19,16 @@ import re
 from dataclasses import dataclass
 from typing import Any
 
+from anyio import CapacityLimiter, to_thread
 from sqlalchemy import Select, bindparam, select
+from sqlalchemy.exc import SQLAlchemyError
 from sqlalchemy.orm import Session
-from starlette.concurrency import run_in_threadpool
 from starlette.datastructures import Headers
 from starlette.routing import BaseRoute
 from starlette.types import ASGIApp, Receive, Scope, Send
 
 from .db.models import DiagnosisSnapshot
-from .db.session import Database
+from .db.session import QUICK_READ_CONNECTIONS, Database
 from .http import etag_matches
 from .http_cache import REVALIDATE
 from .routers import diagnosis as diagnosis_routes
@@ -66,13 +67,19 @@ def current_tag(database: Database, settings: Settings, authorization: str,
     if scheme.lower() != "bearer" or not token.strip():
         return None
     admin = settings.admin_token.get_secret_value() if settings.admin_token else None
-    # Two single-row reads need no transaction: autocommit saves the BEGIN and ROLLBACK.
-    with database.engine.connect().execution_options(isolation_level="AUTOCOMMIT") as connection, \
-            Session(bind=connection) as session:
-        principal = authenticate(session, token.strip(), admin)
-        if principal is None or principal.scope < TokenScope.read:
-            return None
-        row = connection.execute(_LATEST_TAG[document], {"experiment_id": experiment_id}).first()
+    try:
+        # Two single-row reads need no transaction: autocommit saves the BEGIN and ROLLBACK.
+        with database.quick_reads.connect().execution_options(
+                isolation_level="AUTOCOMMIT") as connection, Session(bind=connection) as session:
+            principal = authenticate(session, token.strip(), admin)
+            if principal is None or principal.scope < TokenScope.read:
+                return None
+            row = connection.execute(_LATEST_TAG[document],
+                                     {"experiment_id": experiment_id}).first()
+    except SQLAlchemyError:
+        # A connection the server closed (these are not pinged), an outage: the routes
+        # answer, with their own connections and error handling.
+        return None
     if row is None or row[1] is None or not etag_matches(if_none_match, row[1]):
         return None
     return _Current(row[1], row[0], principal.name)
@@ -87,6 +94,8 @@ class RevalidationMiddleware:
 
     def __init__(self, app: ASGIApp) -> None:
         self.app = app
+        # As many threads as the quick-read engine has connections: none waits for one.
+        self.limiter = CapacityLimiter(QUICK_READ_CONNECTIONS)
         # The routes whose answers these stand for: the access log and metrics label by them.
         self.routes: dict[str, BaseRoute] = {
             document: route for route in diagnosis_routes.router.routes
@@ -109,9 +118,9 @@ class RevalidationMiddleware:
             return
         app = scope["app"]
         document = match["document"]
-        current = await run_in_threadpool(
+        current = await to_thread.run_sync(
             current_tag, app.state.database, app.state.settings, authorization,
-            match["experiment"], document, if_none_match)
+            match["experiment"], document, if_none_match, limiter=self.limiter)
         if current is None:
             await self.app(scope, receive, send)
             return

@@ -3,12 +3,16 @@
 Uploads and diagnoses move whole experiments of rows (180 days x 4 arms x 12 sources is
 8,640), so neither goes through ORM objects:
 
-* writes: the rows go to a per-connection temporary table (PostgreSQL ``COPY``, SQLite
-  ``executemany``), then into ``observations`` with one ``INSERT ... SELECT ... ON CONFLICT DO
-  UPDATE``, inside the caller's transaction, so a failure leaves nothing written;
+* writes: the rows go to a per-connection temporary table, then into ``observations`` with
+  one ``INSERT ... SELECT ... ON CONFLICT DO UPDATE``, inside the caller's transaction, so a
+  failure leaves nothing written. On PostgreSQL the columns travel as one binary ``COPY``
+  whose bytes numpy lays out (:func:`binary_copy_payload`), and the database builds each
+  row's ``metrics`` document from the float columns; on SQLite they are bound with
+  ``executemany`` and the documents are built in Python (:meth:`ObservationColumns.metrics_json`);
 * reads: one ``SELECT`` with a column per metric statistic, extracted from the JSON by the
   database, turned into numpy arrays without a Python loop over rows. Right after an upload
-  only the rows it did not write are read back; its own are taken from memory.
+  only the rows it did not write are read back; its own are taken from memory, and nothing
+  is read when they are all the experiment has.
 """
 
 from __future__ import annotations
@@ -16,10 +20,10 @@ from __future__ import annotations
 import json
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from sqlalchemy import Row, bindparam, select, text
+from sqlalchemy import Row, bindparam, func, select, text
 from sqlalchemy.orm import Session
 
 from detectors.data import STAT_FIELDS
@@ -30,6 +34,7 @@ if TYPE_CHECKING:
     import datetime as dt
 
 _STAGING = "inrush_observations_incoming"
+_CODED = "inrush_observations_incoming_coded"  # PostgreSQL: what the binary COPY fills
 _KEY = ("experiment_id", "date", "arm", "source")
 _SAME_KEY = (f"{_STAGING}.date = observations.date AND {_STAGING}.arm = observations.arm "
              f"AND {_STAGING}.source = observations.source")
@@ -106,6 +111,7 @@ class StagedUpload:
     experiment_id: str
     columns: ObservationColumns
     updated: int
+    stored: int  # rows the experiment has after the upsert, these included
 
     @property
     def inserted(self) -> int:
@@ -121,23 +127,12 @@ def upsert_observations(session: Session, experiment_id: str, rows: ObservationC
     """
     dialect = session.get_bind().dialect.name
     driver = session.connection().connection.driver_connection
-    records = zip(rows.dates.astype("datetime64[D]").astype(str).tolist(), rows.arms.tolist(),
-                  rows.sources.tolist(), rows.entered.tolist(), rows.metrics_json(),
-                  strict=True)
     if dialect == "postgresql":
-        with driver.cursor() as cursor:  # type: ignore[union-attr]
-            # Emptied at every commit; the pooled connection keeps it for the next upload. The
-            # DELETE only matters if this transaction staged rows before (TRUNCATE would
-            # rewrite the table's files every time).
-            cursor.execute(f"CREATE TEMPORARY TABLE IF NOT EXISTS {_STAGING} (date date, "
-                           "arm text, source text, entered bigint, metrics jsonb, "
-                           "PRIMARY KEY (date, arm, source)) ON COMMIT DELETE ROWS")
-            cursor.execute(f"DELETE FROM {_STAGING}")
-            with cursor.copy(f"COPY {_STAGING} (date, arm, source, entered, metrics) "
-                             "FROM STDIN") as copy:
-                for record in records:
-                    copy.write_row(record)
+        _stage_postgresql(driver, rows)
     elif dialect == "sqlite":
+        records = zip(rows.dates.astype("datetime64[D]").astype(str).tolist(),
+                      rows.arms.tolist(), rows.sources.tolist(), rows.entered.tolist(),
+                      rows.metrics_json(), strict=True)
         cursor = driver.cursor()  # type: ignore[union-attr]
         try:
             cursor.execute(f"CREATE TEMPORARY TABLE IF NOT EXISTS {_STAGING} (date date, "
@@ -159,7 +154,92 @@ def upsert_observations(session: Session, experiment_id: str, rows: ObservationC
         f"WHERE true ON CONFLICT ({', '.join(_KEY)}) DO UPDATE SET entered = excluded.entered, "
         "metrics = excluded.metrics, updated_at = excluded.updated_at"
     ).bindparams(bindparam("now", type_=UTCDateTime)), {"id": experiment_id, "now": now})
-    return StagedUpload(experiment_id, rows, int(updated or 0))
+    stored = session.scalar(select(func.count()).select_from(Observation)
+                            .where(Observation.experiment_id == experiment_id))
+    return StagedUpload(experiment_id, rows, int(updated or 0), int(stored or 0))
+
+
+_PG_EPOCH_DAYS = 10_957  # 2000-01-01, day 0 of PostgreSQL's binary dates, after 1970-01-01
+_COPY_SIGNATURE = b"PGCOPY\n\xff\r\n\x00" + bytes(8)  # signature, flags 0, no extension
+_COPY_TRAILER = b"\xff\xff"
+_FLOAT8_OID, _BOOL_OID = 701, 16
+
+
+def binary_copy_payload(rows: ObservationColumns, arm_codes: np.ndarray,
+                        source_codes: np.ndarray) -> bytes:
+    """The rows in PostgreSQL's binary ``COPY`` format, laid out by numpy without a loop.
+
+    Columns: ``date date, arm int4, source int4, entered int8, stats float8[], present
+    bool[]``; ``arm`` and ``source`` are 1-based positions in the name lists sent beside the
+    rows, ``stats`` holds ``n, sum, sum_sq`` of each metric in turn and ``present`` whether
+    each metric is on the row. Every field has a fixed width, so a row is one record of a
+    big-endian structured array (format: PostgreSQL documentation, "COPY", binary format;
+    arrays as ``array_send`` writes them).
+    """
+    names = list(rows.metrics)
+    stats = 3 * len(names)
+    layout: list[tuple[Any, ...]] = [
+        ("fields", ">i2"),
+        ("date_len", ">i4"), ("date", ">i4"),
+        ("arm_len", ">i4"), ("arm", ">i4"),
+        ("source_len", ">i4"), ("source", ">i4"),
+        ("entered_len", ">i4"), ("entered", ">i8"),
+        ("stats_len", ">i4"), ("stats_head", ">i4", (5,)),
+        ("stats", [("len", ">i4"), ("value", ">f8")], (stats,)),
+        ("present_len", ">i4"), ("present_head", ">i4", (5,)),
+        ("present", [("len", ">i4"), ("value", "u1")], (len(names),)),
+    ]
+    record = np.zeros(len(rows), dtype=np.dtype(layout))
+    record["fields"] = 6
+    record["date_len"], record["arm_len"], record["source_len"] = 4, 4, 4
+    record["date"] = rows.dates.astype("datetime64[D]").astype(np.int64) - _PG_EPOCH_DAYS
+    record["arm"], record["source"] = arm_codes + 1, source_codes + 1
+    record["entered_len"], record["entered"] = 8, rows.entered
+    record["stats_len"] = 20 + 12 * stats
+    record["stats_head"] = (1, 0, _FLOAT8_OID, stats, 1)
+    record["present_len"] = 20 + 5 * len(names)
+    record["present_head"] = (1, 0, _BOOL_OID, len(names), 1)
+    if names:
+        record["stats"]["len"] = 8
+        record["stats"]["value"] = np.concatenate([rows.metrics[name] for name in names],
+                                                  axis=1)
+        record["present"]["len"] = 1
+        record["present"]["value"] = np.column_stack([rows.present[name] for name in names])
+    return _COPY_SIGNATURE + record.tobytes() + _COPY_TRAILER
+
+
+def _stage_postgresql(driver: Any, rows: ObservationColumns) -> None:
+    """Fill the staging table: one binary ``COPY`` of coded columns into a second temporary
+    table, then one ``INSERT ... SELECT`` that decodes the names and builds the ``metrics``
+    documents (``jsonb`` keeps the shortest text that reads back as the same float)."""
+    arm_names, arm_codes = np.unique(rows.arms.astype(str), return_inverse=True)
+    source_names, source_codes = np.unique(rows.sources.astype(str), return_inverse=True)
+    names = list(rows.metrics)
+    document = " || ".join(
+        f"CASE WHEN present[{i + 1}] THEN jsonb_build_object(%(metric_{i})s::text, "
+        f"jsonb_build_object('n', stats[{3 * i + 1}]::bigint, 'sum', stats[{3 * i + 2}], "
+        f"'sum_sq', stats[{3 * i + 3}])) ELSE '{{}}'::jsonb END" for i in range(len(names))
+    ) or "'{}'::jsonb"
+    with driver.cursor() as cursor:
+        # Emptied at every commit; the pooled connection keeps them for the next upload. The
+        # DELETEs only matter if this transaction staged rows before (TRUNCATE would rewrite
+        # the tables' files every time).
+        cursor.execute(f"CREATE TEMPORARY TABLE IF NOT EXISTS {_STAGING} (date date, "
+                       "arm text, source text, entered bigint, metrics jsonb, "
+                       "PRIMARY KEY (date, arm, source)) ON COMMIT DELETE ROWS")
+        cursor.execute(f"CREATE TEMPORARY TABLE IF NOT EXISTS {_CODED} (date date, arm int4, "
+                       "source int4, entered int8, stats float8[], present bool[]) "
+                       "ON COMMIT DELETE ROWS")
+        cursor.execute(f"DELETE FROM {_STAGING}")
+        cursor.execute(f"DELETE FROM {_CODED}")
+        with cursor.copy(f"COPY {_CODED} FROM STDIN (FORMAT BINARY)") as copy:
+            copy.write(binary_copy_payload(rows, arm_codes, source_codes))
+        cursor.execute(
+            f"INSERT INTO {_STAGING} (date, arm, source, entered, metrics) SELECT date, "
+            f"(%(arms)s::text[])[arm], (%(sources)s::text[])[source], entered, {document} "
+            f"FROM {_CODED}",
+            {"arms": arm_names.tolist(), "sources": source_names.tolist(),
+             **{f"metric_{i}": name for i, name in enumerate(names)}})
 
 
 def metric_names(session: Session, experiment_id: str, *, besides_staged: bool = False
@@ -184,6 +264,11 @@ def read_observations(session: Session, experiment_id: str,
     With ``staged`` (the upload this transaction just made) only the stored rows it did not
     write are read, and its own rows are added from memory.
     """
+    if staged is not None:
+        if staged.experiment_id != experiment_id:
+            raise ValueError("the staged upload belongs to another experiment")
+        if staged.stored == len(staged.columns):  # the upload holds every stored row
+            return staged.columns
     names = metric_names(session, experiment_id, besides_staged=staged is not None)
     # as_float: a direct cast (SQLite would print a REAL with 15 digits on the way to text).
     extracted = [Observation.metrics[(name, stat)].as_float()
@@ -191,8 +276,6 @@ def read_observations(session: Session, experiment_id: str,
     query = select(Observation.date, Observation.arm, Observation.source, Observation.entered,
                    *extracted).where(Observation.experiment_id == experiment_id)
     if staged is not None:
-        if staged.experiment_id != experiment_id:
-            raise ValueError("the staged upload belongs to another experiment")
         query = query.where(text(_NOT_STAGED))
     stored = _to_columns(session.execute(query).all(), names)
     return stored if staged is None else stored.concat(staged.columns)

@@ -23,17 +23,23 @@ MIGRATIONS_DIR = Path(__file__).resolve().parent.parent / "migrations"
 _BEGIN_OPTION = "inrush_sqlite_begin"
 
 
+# Connections (and at most as many concurrent reads) of the engine that answers polls.
+QUICK_READ_CONNECTIONS = 4
+
+
 def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
-                max_overflow: int = 4) -> Engine:
+                max_overflow: int = 4, pre_ping: bool = True) -> Engine:
     """An engine for ``url``; SQLite connections are configured for concurrent service use.
 
     ``pool_size`` connections are kept open and at most ``max_overflow`` more are opened
     under load (a file database too: opening and configuring a connection per request would
-    cost more than the request).
+    cost more than the request). With ``pre_ping`` a server database's pooled connection is
+    tested with a round trip before it is handed out, so that one the server closed (a
+    restart, an idle timeout) is replaced instead of failing the request.
     """
     parsed = make_url(url)
     if parsed.get_backend_name() != "sqlite":
-        return create_engine(url, pool_pre_ping=True, pool_size=pool_size,
+        return create_engine(url, pool_pre_ping=pre_ping, pool_size=pool_size,
                              max_overflow=max_overflow, hide_parameters=True)
     database = parsed.database or ""
     if database and database != ":memory:" and not database.startswith("file:"):
@@ -75,6 +81,12 @@ class Database:
         self.engine = make_engine(url, busy_timeout_ms=busy_timeout_ms, pool_size=pool_size,
                                   max_overflow=max_overflow)
         self.sessions = sessionmaker(self.engine, expire_on_commit=False)
+        # Polls answered before routing (service.revalidation) read through a few connections
+        # of their own that skip the ping: its round trip would double the cost of the read.
+        # A connection the server closed fails that read, which then leaves the request to
+        # the routes (pinged connections); SQLite has no ping to skip.
+        self.quick_reads = self.engine if self.engine.dialect.name == "sqlite" else make_engine(
+            url, pool_size=QUICK_READ_CONNECTIONS, max_overflow=0, pre_ping=False)
 
     @property
     def dialect(self) -> str:
@@ -100,6 +112,8 @@ class Database:
 
     def dispose(self) -> None:
         self.engine.dispose()
+        if self.quick_reads is not self.engine:
+            self.quick_reads.dispose()
 
 
 def alembic_config(url: str) -> Config:

@@ -145,3 +145,51 @@ def test_the_fast_path_itself_decides(app: FastAPI, client: Any, token_for: Call
     assert current_tag(database, settings, admin, "elsewhere", "series", tag) is None
     assert current_tag(database, settings, "Bearer nope", "route-cards", "series", tag) is None
     assert current_tag(database, settings, "Token x", "route-cards", "series", tag) is None
+
+
+def test_a_failing_quick_read_leaves_the_answer_to_the_route(app: FastAPI, client: Any,
+                                                             polled: dict[str, str],
+                                                             tmp_path: Any) -> None:
+    """The fast path's own connections are not pinged; when a read through them fails, the
+    route answers (the same 304), never an error."""
+    from sqlalchemy import create_engine
+
+    database = app.state.database
+    working = database.quick_reads
+    database.quick_reads = create_engine(f"sqlite:///{tmp_path}/missing/folder/x.db")
+    try:
+        assert current_tag(database, app.state.settings, client.headers["Authorization"],
+                           "route-cards", "diagnosis", polled["diagnosis"]) is None
+        answer = client.get(f"{BASE}/diagnosis", headers={"If-None-Match": polled["diagnosis"]})
+        assert answer.status_code == 304 and answer.headers["etag"] == polled["diagnosis"]
+    finally:
+        database.quick_reads.dispose()
+        database.quick_reads = working
+
+
+def test_quick_read_connections_closed_by_the_server_are_replaced(app: FastAPI, client: Any,
+                                                                  polled: dict[str, str]
+                                                                  ) -> None:
+    """PostgreSQL ends every session of the service (a restart, a failover): polls still get
+    their 304, and the fast path serves them again afterwards."""
+    database = app.state.database
+    if database.dialect != "postgresql":
+        pytest.skip("SQLite connections are files: the server cannot close them")
+    import psycopg
+
+    headers = {"If-None-Match": polled["diagnosis"]}
+    settings, admin = app.state.settings, client.headers["Authorization"]
+    assert current_tag(database, settings, admin, "route-cards", "diagnosis",
+                       polled["diagnosis"]) is not None
+    url = database.engine.url
+    with psycopg.connect(host=url.host, port=url.port or 5432, user=url.username,
+                         dbname="postgres", autocommit=True) as admin_connection:
+        ended = admin_connection.execute(
+            "SELECT count(pg_terminate_backend(pid)) FROM pg_stat_activity "
+            "WHERE datname = %s AND pid <> pg_backend_pid()", (url.database,)).fetchone()
+    assert ended is not None and ended[0] >= 1
+    for _ in range(3):
+        answer = client.get(f"{BASE}/diagnosis", headers=headers)
+        assert answer.status_code == 304 and answer.headers["etag"] == polled["diagnosis"]
+    assert current_tag(database, settings, admin, "route-cards", "diagnosis",
+                       polled["diagnosis"]) is not None

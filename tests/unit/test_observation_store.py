@@ -186,3 +186,19 @@ def test_metrics_json_is_the_stored_document() -> None:
                 assert name not in document
     empty = ObservationColumns(columns.dates, columns.arms, columns.sources, columns.entered)
     assert empty.metrics_json() == ["{}"] * len(columns)
+
+
+def test_read_after_an_upload_of_every_stored_row_equals_a_full_read(database: Database) -> None:
+    """When the upload holds every row the experiment has (a first upload, or one that
+    replaces them all), the read after it comes from memory: it must equal a full read."""
+    first = _columns(range(4), seed=8, absent_every=3)
+    again = _columns(range(4), seed=9)
+    for upload in (first, again):
+        with database.sessions() as session:
+            staged = upsert_observations(session, "trail-test", upload, utcnow())
+            assert staged.stored == len(upload)
+            after_upload = read_observations(session, "trail-test", staged)
+            session.commit()
+        with database.sessions() as session:
+            _assert_same(after_upload, read_observations(session, "trail-test"))
+        _assert_same(after_upload, upload)
