@@ -208,6 +208,15 @@ def binary_copy_payload(rows: ObservationColumns, arm_codes: np.ndarray,
     return _COPY_SIGNATURE + record.tobytes() + _COPY_TRAILER
 
 
+def _float_text(value: str) -> str:
+    """SQL for a float's JSON text: the shortest text that reads back as the same float, and
+    for a whole number its digits with ``.0`` (``jsonb`` would otherwise store ``100`` or
+    ``1e+16`` as an integer, and the document would read back an integer where a float was
+    written)."""
+    return (f"CASE WHEN {value} = trunc({value}) THEN {value}::text::numeric::text || '.0' "
+            f"ELSE {value}::text END")
+
+
 def _stage_postgresql(driver: Any, rows: ObservationColumns) -> None:
     """Fill the staging table: one binary ``COPY`` of coded columns into a second temporary
     table, then one ``INSERT ... SELECT`` that decodes the names and writes each row's
@@ -218,8 +227,9 @@ def _stage_postgresql(driver: Any, rows: ObservationColumns) -> None:
     names = list(rows.metrics)
     members = ", ".join(
         f"CASE WHEN present[{i + 1}] THEN %(metric_{i})s || ': {{\"n\": ' || "
-        f"stats[{3 * i + 1}]::bigint || ', \"sum\": ' || stats[{3 * i + 2}] || "
-        f"', \"sum_sq\": ' || stats[{3 * i + 3}] || '}}' END" for i in range(len(names)))
+        f"stats[{3 * i + 1}]::bigint || ', \"sum\": ' || {_float_text(f'stats[{3 * i + 2}]')} "
+        f"|| ', \"sum_sq\": ' || {_float_text(f'stats[{3 * i + 3}]')} || '}}' END"
+        for i in range(len(names)))
     document = f"('{{' || concat_ws(', ', {members}) || '}}')::jsonb" if names else "'{}'"
     with driver.cursor() as cursor:
         # Emptied at every commit; the pooled connection keeps them for the next upload. The

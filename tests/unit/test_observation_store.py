@@ -93,6 +93,10 @@ def _assert_same(left: ObservationColumns, right: ObservationColumns) -> None:
 
 def test_rows_read_back_exactly_as_written(database: Database) -> None:
     written = _columns(range(10), seed=1, absent_every=4)
+    # Whole numbers, one of 16 digits, negative zero and the extremes of float64 as well.
+    special = [100.0, 1e15, 1e16, 2.0**53, -0.0, 5e-324, 1.7976931348623157e308, 1e-5]
+    written.metrics["hikes"][:len(special), 1] = special
+    written.metrics["hikes"][:len(special), 2] = special[::-1]
     with database.sessions() as session:
         staged = upsert_observations(session, "trail-test", written, utcnow())
         session.commit()
@@ -104,6 +108,13 @@ def test_rows_read_back_exactly_as_written(database: Database) -> None:
     absent = [o for o in stored if "photos" not in o.metrics]
     assert len(absent) == int((~written.present["photos"]).sum()) > 0
     assert all(isinstance(o.metrics["hikes"]["n"], int) for o in stored)
+    # The stored documents read back with the types Python wrote: sums are floats, whole or not.
+    assert all(isinstance(o.metrics["hikes"][stat], float) for o in stored
+               for stat in ("sum", "sum_sq"))
+    expected = {(d, a, s): json.loads(text) for d, a, s, text in zip(
+        written.dates.astype(str).tolist(), written.arms.tolist(), written.sources.tolist(),
+        written.metrics_json(), strict=True)}
+    assert {(o.date.isoformat(), o.arm, o.source): o.metrics for o in stored} == expected
 
 
 def test_replacing_counts_updates_and_keeps_other_rows(database: Database) -> None:
