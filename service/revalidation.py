@@ -2,8 +2,10 @@
 
 Dashboards poll ``GET /v1/experiments/{id}/diagnosis`` and ``.../series`` with the entity tag
 they hold, and nearly every answer is 304 Not Modified. :class:`RevalidationMiddleware` answers
-those from one indexed query of the latest snapshot's tag, in a single worker-thread call
-(session, bearer token, tag), without routing, dependency resolution or loading a document.
+those from one indexed query of the latest snapshot's tag (session, bearer token, tag),
+without routing, dependency resolution or loading a document: on a SQLite file directly on
+the event loop, through a connection that never waits for a lock; on PostgreSQL in one
+worker-thread call, through connections that are not pinged (``Database.quick_reads``).
 
 It only ever answers 304, and only when everything checks out: a bearer token with at least
 read scope, no query string, and an ``If-None-Match`` that matches the latest tag. Anything
@@ -118,9 +120,13 @@ class RevalidationMiddleware:
             return
         app = scope["app"]
         document = match["document"]
-        current = await to_thread.run_sync(
-            current_tag, app.state.database, app.state.settings, authorization,
-            match["experiment"], document, if_none_match, limiter=self.limiter)
+        database: Database = app.state.database
+        arguments = (database, app.state.settings, authorization, match["experiment"],
+                     document, if_none_match)
+        if database.quick_reads_inline:  # never waits (see Database): no thread hand-off
+            current = current_tag(*arguments)
+        else:
+            current = await to_thread.run_sync(current_tag, *arguments, limiter=self.limiter)
         if current is None:
             await self.app(scope, receive, send)
             return

@@ -81,12 +81,24 @@ class Database:
         self.engine = make_engine(url, busy_timeout_ms=busy_timeout_ms, pool_size=pool_size,
                                   max_overflow=max_overflow)
         self.sessions = sessionmaker(self.engine, expire_on_commit=False)
-        # Polls answered before routing (service.revalidation) read through a few connections
-        # of their own that skip the ping: its round trip would double the cost of the read.
-        # A connection the server closed fails that read, which then leaves the request to
-        # the routes (pinged connections); SQLite has no ping to skip.
-        self.quick_reads = self.engine if self.engine.dialect.name == "sqlite" else make_engine(
-            url, pool_size=QUICK_READ_CONNECTIONS, max_overflow=0, pre_ping=False)
+        # Polls answered before routing (service.revalidation) read through connections of
+        # their own. A read that fails leaves the request to the routes, so these may skip
+        # what makes the routes' connections robust:
+        # * PostgreSQL: a few connections that are not pinged before use (the ping's round
+        #   trip would double the cost of the read); one the server closed fails its read.
+        # * SQLite file: one connection that never waits for a lock (busy timeout 0), so its
+        #   reads may run on the event loop itself (``quick_reads_inline``): in WAL mode a
+        #   reader is refused only while a checkpoint or recovery holds the file.
+        # * SQLite in memory: the one shared database, through the main engine.
+        self.quick_reads = self.engine
+        self.quick_reads_inline = False
+        database = self.engine.url.database or ""
+        if self.engine.dialect.name != "sqlite":
+            self.quick_reads = make_engine(url, pool_size=QUICK_READ_CONNECTIONS,
+                                           max_overflow=0, pre_ping=False)
+        elif database not in ("", ":memory:") and not database.startswith("file:"):
+            self.quick_reads = make_engine(url, busy_timeout_ms=0, pool_size=1, max_overflow=0)
+            self.quick_reads_inline = True
 
     @property
     def dialect(self) -> str:

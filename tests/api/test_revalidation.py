@@ -193,3 +193,35 @@ def test_quick_read_connections_closed_by_the_server_are_replaced(app: FastAPI, 
         assert answer.status_code == 304 and answer.headers["etag"] == polled["diagnosis"]
     assert current_tag(database, settings, admin, "route-cards", "diagnosis",
                        polled["diagnosis"]) is not None
+
+
+def test_on_a_sqlite_file_quick_reads_never_wait_for_a_lock(app: FastAPI, client: Any,
+                                                            polled: dict[str, str]) -> None:
+    """Polls on a SQLite file are answered on the event loop, so their reads must not wait:
+    while another connection holds the file exclusively, the fast path gives up at once
+    (the route then answers, waiting as long as the busy timeout allows)."""
+    import sqlite3
+    import time
+
+    database = app.state.database
+    if not database.quick_reads_inline:
+        pytest.skip("only a SQLite file database reads on the event loop")
+    settings, admin = app.state.settings, client.headers["Authorization"]
+    # Only a connection that is alone on a WAL database can hold it exclusively.
+    database.engine.dispose()
+    database.quick_reads.dispose()
+    holder = sqlite3.connect(database.engine.url.database, isolation_level=None)
+    try:
+        holder.execute("PRAGMA locking_mode=EXCLUSIVE")
+        holder.execute("BEGIN EXCLUSIVE")
+        holder.execute("UPDATE experiments SET title = title")
+        started = time.monotonic()
+        assert current_tag(database, settings, admin, "route-cards", "diagnosis",
+                           polled["diagnosis"]) is None
+        # A busy timeout would have waited 30 s; no wait at all is what inline reads need.
+        assert time.monotonic() - started < 5
+    finally:
+        holder.execute("ROLLBACK")
+        holder.close()
+    assert current_tag(database, settings, admin, "route-cards", "diagnosis",
+                       polled["diagnosis"]) is not None
