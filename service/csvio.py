@@ -6,6 +6,7 @@ import csv
 import io
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from detectors.errors import InputError, Problem
@@ -14,10 +15,12 @@ REQUIRED_COLUMNS = ("date", "arm", "entered")
 
 
 def read_observations_csv(source: str | bytes | Path) -> pd.DataFrame:
-    """Parse CSV text, bytes or a file into a frame of strings (validation happens later).
+    """Parse CSV text, bytes or a file into a frame (validation happens later).
 
     A UTF-8 byte-order mark is accepted; any other encoding, ragged rows, an empty file or a
-    missing required column raise :class:`InputError` naming the problem and the row.
+    missing required column raise :class:`InputError` naming the problem and the row. A plain
+    file is read by :func:`plain_csv` (numbers parsed), anything else by :func:`strict_csv`
+    (all text); :func:`detectors.data.validate_frame` takes either.
     """
     if isinstance(source, Path):
         source = source.read_bytes()
@@ -34,6 +37,13 @@ def read_observations_csv(source: str | bytes | Path) -> pd.DataFrame:
         line = text.count("\n", 0, text.index("\x00")) + 1
         raise InputError([Problem("body", f"line {line} contains a NUL character (U+0000); "
                                   "is the file UTF-16 or binary?")])
+    plain = plain_csv(text)
+    return plain if plain is not None else strict_csv(text)
+
+
+def strict_csv(text: str) -> pd.DataFrame:
+    """Any CSV text (decoded, no NUL) by the standard library's strict reader: a frame of
+    strings; every problem is raised with its row."""
     reader = csv.reader(io.StringIO(text, newline=""), strict=True)
     try:
         header = [name.strip() for name in next(reader)]
@@ -60,6 +70,46 @@ def read_observations_csv(source: str | bytes | Path) -> pd.DataFrame:
         raise InputError([Problem("rows", "the CSV has a header but no data rows")])
     frame = pd.DataFrame(rows, columns=header, dtype="string")
     return frame.replace({"": pd.NA})
+
+
+_TEXT_COLUMNS = ("date", "arm", "source")
+
+
+def plain_csv(text: str) -> pd.DataFrame | None:
+    """The common file, read by pandas' C parser: no quotes, a unique header with the required
+    columns, every line with as many fields as the header, every other column numbers.
+    ``None`` otherwise; the caller then reads it with :func:`strict_csv`, which names each
+    problem. Text columns stay text; numbers arrive parsed (the JSON path's shape), and an
+    empty cell is missing."""
+    if '"' in text:
+        return None
+    first, _, _ = text.partition("\n")
+    header = [name.strip() for name in first.rstrip("\r").split(",")]
+    if len(set(header)) != len(header) or not set(REQUIRED_COLUMNS) <= set(header):
+        return None
+    # Fields per line, counted over the bytes at once: every line must have the header's.
+    raw = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
+    line_ends = np.flatnonzero(raw == ord("\n"))
+    commas = np.bincount(np.searchsorted(line_ends, np.flatnonzero(raw == ord(","))),
+                         minlength=len(line_ends) + 1)
+    if text.endswith("\n"):
+        commas = commas[:-1]  # after the last line end there is no line
+    if len(commas) < 2 or np.any(commas != len(header) - 1):
+        return None
+    try:
+        frame = pd.read_csv(io.StringIO(text), engine="c", header=0, names=header,
+                            dtype={c: str for c in _TEXT_COLUMNS if c in header},
+                            keep_default_na=False, na_values=[""], skip_blank_lines=False)
+    except (ValueError, pd.errors.ParserError):
+        return None
+    numbers = [c for c in header if c not in _TEXT_COLUMNS]
+    if len(frame) != len(commas) - 1 or any(
+            frame[c].dtype not in (np.int64, np.float64) for c in numbers):
+        return None  # a cell that is not a number: the strict reader names it
+    for column in _TEXT_COLUMNS:
+        if column in frame:
+            frame[column] = frame[column].astype("string")
+    return frame
 
 
 def write_observations_csv(rows: list[dict[str, object]]) -> str:
