@@ -102,6 +102,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         finally:
             if worker is not None:
                 await run_in_threadpool(worker.stop)
+            if database.async_reads is not None:
+                await database.async_reads.close()
             database.dispose()
 
     app = FastAPI(title="Inrush", version=package_version(), description=DESCRIPTION,

@@ -2,10 +2,12 @@
 
 Dashboards poll ``GET /v1/experiments/{id}/diagnosis`` and ``.../series`` with the entity tag
 they hold, and nearly every answer is 304 Not Modified. :class:`RevalidationMiddleware` answers
-those from one indexed query of the latest snapshot's tag (session, bearer token, tag),
-without routing, dependency resolution or loading a document: on a SQLite file directly on
-the event loop, through a connection that never waits for a lock; on PostgreSQL in one
-worker-thread call, through connections that are not pinged (``Database.quick_reads``).
+those from the bearer token and one indexed query of the latest snapshot's tag, on the event
+loop itself (a hand-off to a worker thread would cost more than the read), without routing,
+dependency resolution or loading a document: on PostgreSQL in one awaited round trip through
+connections of its own (``Database.async_reads``), on a SQLite file through a connection that
+never waits for a lock (``Database.quick_reads``). A read that fails leaves the request to the
+routes; with SQLite in memory every request is routed.
 
 It only ever answers 304, and only when everything checks out: a bearer token with at least
 read scope, no query string, and an ``If-None-Match`` that matches the latest tag. Anything
@@ -17,26 +19,26 @@ access log and metrics see the route's template as for any routed request.
 
 from __future__ import annotations
 
+import datetime as dt
 import re
 from dataclasses import dataclass
 from typing import Any
 
-from anyio import CapacityLimiter, to_thread
-from sqlalchemy import Select, bindparam, select
+from sqlalchemy import Engine, Select, bindparam, select
 from sqlalchemy.exc import SQLAlchemyError
-from sqlalchemy.orm import Session
 from starlette.datastructures import Headers
 from starlette.routing import BaseRoute
 from starlette.types import ASGIApp, Receive, Scope, Send
 
-from .db.models import DiagnosisSnapshot
-from .db.session import QUICK_READ_CONNECTIONS, Database
+from .db.async_reads import QuickReadError
+from .db.models import ApiToken, DiagnosisSnapshot
+from .db.session import Database
 from .http import etag_matches
 from .http_cache import REVALIDATE
 from .routers import diagnosis as diagnosis_routes
 from .settings import Settings
+from .tokens import Principal, bootstrap_principal, hash_token, stored_principal
 from .tokens import Scope as TokenScope
-from .tokens import authenticate
 
 _PATH = re.compile(r"/v1/experiments/(?P<experiment>[^/]+)/(?P<document>diagnosis|series)")
 _TEMPLATES = {"diagnosis": "/v1/experiments/{experiment_id}/diagnosis",
@@ -52,6 +54,14 @@ def _latest_tag(tag_column: Any) -> Select[tuple[int, str]]:
 # Built once: polls run them many times a second.
 _LATEST_TAG = {"diagnosis": _latest_tag(DiagnosisSnapshot.etag),
                "series": _latest_tag(DiagnosisSnapshot.series_etag)}
+# PostgreSQL: the latest tag and the presented token's row in one round trip.
+_TAG_AND_TOKEN = {document: (
+    f"SELECT latest.version, latest.tag, token.id, token.name, token.scope, token.token_hash, "
+    f"token.revoked_at FROM (SELECT 1) AS one "
+    f"LEFT JOIN LATERAL (SELECT version, {column} AS tag FROM {DiagnosisSnapshot.__tablename__}"
+    f" WHERE experiment_id = %(experiment_id)s ORDER BY version DESC LIMIT 1) AS latest ON true "
+    f"LEFT JOIN {ApiToken.__tablename__} AS token ON token.token_hash = %(digest)s")
+    for document, column in (("diagnosis", "etag"), ("series", "series_etag"))}
 
 
 @dataclass(frozen=True)
@@ -61,30 +71,72 @@ class _Current:
     principal: str
 
 
-def current_tag(database: Database, settings: Settings, authorization: str,
-                experiment_id: str, document: str, if_none_match: str) -> _Current | None:
-    """The latest tag of ``document`` when the token may read it and ``If-None-Match`` holds
-    it; ``None`` in every other case (the route then answers)."""
+@dataclass(frozen=True)
+class _TokenRow:
+    id: int
+    name: str
+    scope: str
+    token_hash: str
+    revoked_at: dt.datetime | None
+
+
+def _bearer_digest(authorization: str) -> str | None:
     scheme, _, token = authorization.partition(" ")
     if scheme.lower() != "bearer" or not token.strip():
         return None
+    return hash_token(token.strip())
+
+
+def _decide(principal: Principal | None, tag_row: tuple[Any, Any] | None,
+            if_none_match: str) -> _Current | None:
+    if principal is None or principal.scope < TokenScope.read:
+        return None
+    if tag_row is None or tag_row[1] is None or not etag_matches(if_none_match, tag_row[1]):
+        return None
+    return _Current(tag_row[1], tag_row[0], principal.name)
+
+
+async def current_tag(database: Database, settings: Settings, authorization: str,
+                      experiment_id: str, document: str, if_none_match: str) -> _Current | None:
+    """The latest tag of ``document`` when the token may read it and ``If-None-Match`` holds
+    it; ``None`` in every other case, a failed read included (the route then answers)."""
+    digest = _bearer_digest(authorization)
+    if digest is None:
+        return None
     admin = settings.admin_token.get_secret_value() if settings.admin_token else None
+    if database.async_reads is not None:
+        try:
+            row = await database.async_reads.fetch_one(
+                _TAG_AND_TOKEN[document], {"experiment_id": experiment_id, "digest": digest})
+        except QuickReadError:
+            return None
+        if row is None:
+            return None
+        stored = _TokenRow(*row[2:]) if row[2] is not None else None
+        principal = bootstrap_principal(digest, admin) or stored_principal(stored, digest)
+        return _decide(principal, (row[0], row[1]), if_none_match)
+    if database.quick_reads is not None:
+        return _current_tag_sqlite(database.quick_reads, admin, digest, experiment_id,
+                                   document, if_none_match)
+    return None
+
+
+def _current_tag_sqlite(engine: Engine, admin: str | None, digest: str, experiment_id: str,
+                        document: str, if_none_match: str) -> _Current | None:
     try:
         # Two single-row reads need no transaction: autocommit saves the BEGIN and ROLLBACK.
-        with database.quick_reads.connect().execution_options(
-                isolation_level="AUTOCOMMIT") as connection, Session(bind=connection) as session:
-            principal = authenticate(session, token.strip(), admin)
-            if principal is None or principal.scope < TokenScope.read:
+        with engine.connect().execution_options(isolation_level="AUTOCOMMIT") as connection:
+            principal = bootstrap_principal(digest, admin) or stored_principal(
+                connection.execute(select(ApiToken).where(ApiToken.token_hash == digest))
+                .first(), digest)
+            if principal is None:
                 return None
             row = connection.execute(_LATEST_TAG[document],
                                      {"experiment_id": experiment_id}).first()
     except SQLAlchemyError:
-        # A connection the server closed (these are not pinged), an outage: the routes
-        # answer, with their own connections and error handling.
+        # The file is held by a checkpoint or recovery (this connection never waits).
         return None
-    if row is None or row[1] is None or not etag_matches(if_none_match, row[1]):
-        return None
-    return _Current(row[1], row[0], principal.name)
+    return _decide(principal, None if row is None else (row[0], row[1]), if_none_match)
 
 
 class RevalidationMiddleware:
@@ -96,8 +148,6 @@ class RevalidationMiddleware:
 
     def __init__(self, app: ASGIApp) -> None:
         self.app = app
-        # As many threads as the quick-read engine has connections: none waits for one.
-        self.limiter = CapacityLimiter(QUICK_READ_CONNECTIONS)
         # The routes whose answers these stand for: the access log and metrics label by them.
         self.routes: dict[str, BaseRoute] = {
             document: route for route in diagnosis_routes.router.routes
@@ -120,13 +170,8 @@ class RevalidationMiddleware:
             return
         app = scope["app"]
         document = match["document"]
-        database: Database = app.state.database
-        arguments = (database, app.state.settings, authorization, match["experiment"],
-                     document, if_none_match)
-        if database.quick_reads_inline:  # never waits (see Database): no thread hand-off
-            current = current_tag(*arguments)
-        else:
-            current = await to_thread.run_sync(current_tag, *arguments, limiter=self.limiter)
+        current = await current_tag(app.state.database, app.state.settings, authorization,
+                                    match["experiment"], document, if_none_match)
         if current is None:
             await self.app(scope, receive, send)
             return

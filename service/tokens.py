@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import datetime as dt
 import hashlib
 import hmac
 import re
 import secrets
 from dataclasses import dataclass
 from enum import IntEnum
+from typing import Protocol
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
@@ -107,12 +109,26 @@ def list_tokens(session: Session) -> list[ApiToken]:
     return list(session.scalars(select(ApiToken).order_by(ApiToken.id)))
 
 
-def authenticate(session: Session, presented: str, admin_token: str | None) -> Principal | None:
-    """The principal for a presented bearer token, or ``None`` when it is unknown or revoked."""
-    digest = hash_token(presented)
+def bootstrap_principal(digest: str, admin_token: str | None) -> Principal | None:
+    """The bootstrap admin when ``digest`` is the hash of ``INRUSH_ADMIN_TOKEN``."""
     if admin_token and hmac.compare_digest(digest, hash_token(admin_token)):
         return Principal(BOOTSTRAP_NAME, Scope.admin)
-    stored = session.scalar(select(ApiToken).where(ApiToken.token_hash == digest))
+    return None
+
+
+class StoredToken(Protocol):
+    """What :func:`stored_principal` reads of a stored token (an ``ApiToken`` row or a plain
+    record of its columns)."""
+
+    id: int
+    name: str
+    scope: str
+    token_hash: str
+    revoked_at: dt.datetime | None
+
+
+def stored_principal(stored: StoredToken | None, digest: str) -> Principal | None:
+    """The principal of the stored token found by ``digest``, unless it is revoked."""
     if stored is None or stored.revoked_at is not None:
         return None
     # The lookup matched on the hash already; compare again in constant time so that the
@@ -120,3 +136,10 @@ def authenticate(session: Session, presented: str, admin_token: str | None) -> P
     if not hmac.compare_digest(stored.token_hash, digest):
         return None
     return Principal(stored.name, Scope[stored.scope], stored.id)
+
+
+def authenticate(session: Session, presented: str, admin_token: str | None) -> Principal | None:
+    """The principal for a presented bearer token, or ``None`` when it is unknown or revoked."""
+    digest = hash_token(presented)
+    return bootstrap_principal(digest, admin_token) or stored_principal(
+        session.scalar(select(ApiToken).where(ApiToken.token_hash == digest)), digest)

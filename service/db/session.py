@@ -19,27 +19,29 @@ from sqlalchemy import Engine, create_engine, event, text
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
+from .async_reads import AsyncReads
+
 MIGRATIONS_DIR = Path(__file__).resolve().parent.parent / "migrations"
 _BEGIN_OPTION = "inrush_sqlite_begin"
 
 
-# Connections (and at most as many concurrent reads) of the engine that answers polls.
+# Connections of the PostgreSQL pool that answers polls (service.revalidation).
 QUICK_READ_CONNECTIONS = 4
 
 
 def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
-                max_overflow: int = 4, pre_ping: bool = True) -> Engine:
+                max_overflow: int = 4) -> Engine:
     """An engine for ``url``; SQLite connections are configured for concurrent service use.
 
     ``pool_size`` connections are kept open and at most ``max_overflow`` more are opened
     under load (a file database too: opening and configuring a connection per request would
-    cost more than the request). With ``pre_ping`` a server database's pooled connection is
-    tested with a round trip before it is handed out, so that one the server closed (a
-    restart, an idle timeout) is replaced instead of failing the request.
+    cost more than the request). A server database's pooled connection is tested with a
+    round trip before it is handed out, so that one the server closed (a restart, an idle
+    timeout) is replaced instead of failing the request.
     """
     parsed = make_url(url)
     if parsed.get_backend_name() != "sqlite":
-        return create_engine(url, pool_pre_ping=pre_ping, pool_size=pool_size,
+        return create_engine(url, pool_pre_ping=True, pool_size=pool_size,
                              max_overflow=max_overflow, hide_parameters=True)
     database = parsed.database or ""
     if database and database != ":memory:" and not database.startswith("file:"):
@@ -83,22 +85,21 @@ class Database:
         self.sessions = sessionmaker(self.engine, expire_on_commit=False)
         # Polls answered before routing (service.revalidation) read through connections of
         # their own. A read that fails leaves the request to the routes, so these may skip
-        # what makes the routes' connections robust:
-        # * PostgreSQL: a few connections that are not pinged before use (the ping's round
-        #   trip would double the cost of the read); one the server closed fails its read.
-        # * SQLite file: one connection that never waits for a lock (busy timeout 0), so its
-        #   reads may run on the event loop itself (``quick_reads_inline``): in WAL mode a
-        #   reader is refused only while a checkpoint or recovery holds the file.
-        # * SQLite in memory: the one shared database, through the main engine.
-        self.quick_reads = self.engine
-        self.quick_reads_inline = False
+        # what makes the routes' connections robust, and their reads run on the event loop:
+        # * PostgreSQL (``async_reads``): a few asynchronous connections, not pinged before
+        #   use (the ping's round trip would double the cost of the read);
+        # * SQLite file (``quick_reads``): one connection that never waits for a lock (busy
+        #   timeout 0): in WAL mode a reader is refused only while a checkpoint or recovery
+        #   holds the file;
+        # * SQLite in memory: none (every request is routed).
+        self.quick_reads: Engine | None = None
+        self.async_reads: AsyncReads | None = None
         database = self.engine.url.database or ""
-        if self.engine.dialect.name != "sqlite":
-            self.quick_reads = make_engine(url, pool_size=QUICK_READ_CONNECTIONS,
-                                           max_overflow=0, pre_ping=False)
-        elif database not in ("", ":memory:") and not database.startswith("file:"):
+        if self.engine.dialect.name == "postgresql":
+            self.async_reads = AsyncReads(url, QUICK_READ_CONNECTIONS)
+        elif self.engine.dialect.name == "sqlite" and database not in ("", ":memory:") \
+                and not database.startswith("file:"):
             self.quick_reads = make_engine(url, busy_timeout_ms=0, pool_size=1, max_overflow=0)
-            self.quick_reads_inline = True
 
     @property
     def dialect(self) -> str:
@@ -123,8 +124,10 @@ class Database:
             connection.execute(text("SELECT 1"))
 
     def dispose(self) -> None:
+        """Close the pooled connections (the asynchronous ones close with the application,
+        in its event loop: :meth:`AsyncReads.close`)."""
         self.engine.dispose()
-        if self.quick_reads is not self.engine:
+        if self.quick_reads is not None:
             self.quick_reads.dispose()
 
 
