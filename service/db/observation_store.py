@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from sqlalchemy import Row, bindparam, func, select, text
+from sqlalchemy import Row, bindparam, select, text
 from sqlalchemy.orm import Session
 
 from detectors.data import STAT_FIELDS
@@ -144,9 +144,10 @@ def upsert_observations(session: Session, experiment_id: str, rows: ObservationC
             cursor.close()
     else:
         raise RuntimeError(f"upserts are implemented for SQLite and PostgreSQL, not {dialect}")
-    updated = session.scalar(text(
-        f"SELECT count(*) FROM observations JOIN {_STAGING} ON {_SAME_KEY} "
-        "WHERE observations.experiment_id = :id"), {"id": experiment_id})
+    # Before the upsert: the experiment's stored rows, and how many of them it replaces.
+    before, updated = session.execute(text(
+        f"SELECT count(*), count({_STAGING}.date) FROM observations LEFT JOIN {_STAGING} "
+        f"ON {_SAME_KEY} WHERE observations.experiment_id = :id"), {"id": experiment_id}).one()
     # "WHERE true" lets SQLite tell the upsert clause from a join constraint.
     session.execute(text(
         "INSERT INTO observations (experiment_id, date, arm, source, entered, metrics, "
@@ -154,9 +155,8 @@ def upsert_observations(session: Session, experiment_id: str, rows: ObservationC
         f"WHERE true ON CONFLICT ({', '.join(_KEY)}) DO UPDATE SET entered = excluded.entered, "
         "metrics = excluded.metrics, updated_at = excluded.updated_at"
     ).bindparams(bindparam("now", type_=UTCDateTime)), {"id": experiment_id, "now": now})
-    stored = session.scalar(select(func.count()).select_from(Observation)
-                            .where(Observation.experiment_id == experiment_id))
-    return StagedUpload(experiment_id, rows, int(updated or 0), int(stored or 0))
+    updated = int(updated or 0)
+    return StagedUpload(experiment_id, rows, updated, int(before or 0) + len(rows) - updated)
 
 
 _PG_EPOCH_DAYS = 10_957  # 2000-01-01, day 0 of PostgreSQL's binary dates, after 1970-01-01
