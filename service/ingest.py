@@ -10,11 +10,11 @@ from __future__ import annotations
 import datetime as dt
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
 
+import msgspec
 import numpy as np
-import orjson
 import pandas as pd
+from msgspec import UNSET
 from pydantic import TypeAdapter, ValidationError
 from sqlalchemy.orm import Session
 
@@ -26,7 +26,7 @@ from .db.models import Experiment, utcnow
 from .db.observation_store import ObservationColumns, StagedUpload, upsert_observations
 from .gc_pause import paused_garbage_collection
 from .json_guard import JSONBodyError, find_bad_string, format_path, strict_loads
-from .schemas.observations import ObservationIn, rows_plainly_conform
+from .schemas.observations import ObservationIn, PlainBatch, rows_plainly_conform
 
 BASE_COLUMNS = ("date", "arm", "source", "entered")
 _ROWS_ADAPTER: TypeAdapter[list[ObservationIn]] = TypeAdapter(list[ObservationIn])
@@ -63,9 +63,9 @@ def parse_json_body(body: bytes, max_rows: int) -> ParsedBody:
 
 def _parse_json_body(body: bytes, max_rows: int) -> ParsedBody:
     # Strict: UTF-8, no NaN/Infinity, no repeated member names, no NUL or lone surrogates.
-    document = _plain_document(body, max_rows)
-    if document is not None:
-        return ParsedBody(records_to_frame(document["rows"]), [])
+    plain = _plain_rows(body, max_rows)
+    if plain is not None:
+        return ParsedBody(plain, [])
     try:
         document = strict_loads(body, check_strings=False)
     except JSONBodyError as error:
@@ -112,31 +112,44 @@ def _parse_json_body(body: bytes, max_rows: int) -> ParsedBody:
     return ParsedBody(frame, problems)
 
 
-def _plain_document(body: bytes, max_rows: int) -> dict[str, Any] | None:
-    """The common upload, read by a fast parser: ``{"rows": [...]}`` whose rows plainly
-    conform, no string escapes, and provably no repeated member name; ``None`` otherwise
-    (the caller then parses strictly, and names whatever is wrong).
+_PLAIN_BATCH = msgspec.json.Decoder(PlainBatch)
 
-    orjson refuses what RFC 8259 refuses (NaN, invalid UTF-8...), but a repeated member
+
+def _plain_rows(body: bytes, max_rows: int) -> pd.DataFrame | None:
+    """The common upload, read and shape-checked in one pass by msgspec: ``{"rows": [...]}``
+    with rows of the plain shape (:class:`PlainRow`), no string escapes, and provably no
+    repeated member name; as the flat frame :func:`records_to_frame` would build. ``None``
+    otherwise: the caller then parses strictly, and names whatever is wrong.
+
+    msgspec refuses what RFC 8259 refuses (NaN, invalid UTF-8...), but a repeated member
     silently keeps its last value. Each member of the text has one ``:`` outside strings, and
     any ``:`` inside one only adds to the count, so when the body holds exactly as many ``:``
-    as the parsed document has members, no member was repeated.
+    as the decoded document has members, no member was repeated.
     """
     if b"\\" in body:  # escapes may hide U+0000 or a lone surrogate: the strict path checks
         return None
     try:
-        document = orjson.loads(body)
-    except orjson.JSONDecodeError:
+        rows = _PLAIN_BATCH.decode(body).rows
+    except (msgspec.DecodeError, msgspec.ValidationError):
         return None
-    if type(document) is not dict or document.keys() != {"rows"}:
+    if not rows or len(rows) > max_rows:
         return None
-    rows = document["rows"]
-    if type(rows) is not list or not rows or len(rows) > max_rows \
-            or not rows_plainly_conform(rows):
+    metrics = [row.metrics or {} for row in rows]  # UNSET and None are both falsy
+    # A member per field sent, and per metric its name and three statistics.
+    members = 1 + 3 * len(rows) + sum(row.source is not UNSET for row in rows) \
+        + sum(row.metrics is not UNSET for row in rows) + 4 * sum(map(len, metrics))
+    if body.count(b":") != members:
         return None
-    # Conforming rows: a member per field, and per metric its name and three statistics.
-    members = 1 + sum(map(len, rows)) + 4 * sum(len(row.get("metrics") or ()) for row in rows)
-    return document if body.count(b":") == members else None
+    columns: dict[str, list[object]] = {
+        "date": [row.date for row in rows], "arm": [row.arm for row in rows],
+        "source": [None if row.source is UNSET else row.source for row in rows],
+        "entered": [row.entered for row in rows]}
+    for name in dict.fromkeys(name for cells in metrics for name in cells):
+        stats = [cells.get(name) for cells in metrics]
+        columns[f"{name}.n"] = [None if s is None else s.n for s in stats]
+        columns[f"{name}.sum"] = [None if s is None else s.sum for s in stats]
+        columns[f"{name}.sum_sq"] = [None if s is None else s.sum_sq for s in stats]
+    return pd.DataFrame(columns)
 
 
 def parse_csv_body(body: bytes, max_rows: int) -> ParsedBody:
