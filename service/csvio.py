@@ -50,13 +50,7 @@ def strict_csv(text: str) -> pd.DataFrame:
         rows = list(reader)
     except csv.Error as error:
         raise InputError([Problem("body", f"CSV is malformed: {error}")]) from None
-    problems: list[Problem] = []
-    missing = [c for c in REQUIRED_COLUMNS if c not in header]
-    if missing:
-        problems.append(Problem("header", f"missing required column(s): {', '.join(missing)}"))
-    duplicated = sorted({c for c in header if header.count(c) > 1})
-    if duplicated:
-        problems.append(Problem("header", f"repeated column(s): {', '.join(duplicated)}"))
+    problems = _header_problems(header)
     if problems:
         raise InputError(problems)
     rows = [r for r in rows if r != []]  # blank lines carry nothing
@@ -72,6 +66,18 @@ def strict_csv(text: str) -> pd.DataFrame:
     return frame.replace({"": pd.NA})
 
 
+def _header_problems(header: list[str]) -> list[Problem]:
+    """What is wrong with the (stripped) header names: required columns missing, repeats."""
+    problems: list[Problem] = []
+    missing = [c for c in REQUIRED_COLUMNS if c not in header]
+    if missing:
+        problems.append(Problem("header", f"missing required column(s): {', '.join(missing)}"))
+    duplicated = sorted({c for c in header if header.count(c) > 1})
+    if duplicated:
+        problems.append(Problem("header", f"repeated column(s): {', '.join(duplicated)}"))
+    return problems
+
+
 _TEXT_COLUMNS = ("date", "arm", "source")
 
 
@@ -85,7 +91,7 @@ def plain_csv(text: str) -> pd.DataFrame | None:
         return None
     first, _, _ = text.partition("\n")
     header = [name.strip() for name in first.rstrip("\r").split(",")]
-    if len(set(header)) != len(header) or not set(REQUIRED_COLUMNS) <= set(header):
+    if _header_problems(header):
         return None
     # Fields per line, counted over the bytes at once: every line must have the header's.
     raw = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)

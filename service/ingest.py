@@ -153,7 +153,8 @@ def _plain_rows(body: bytes, max_rows: int) -> pd.DataFrame | None:
 
 
 def parse_csv_body(body: bytes, max_rows: int) -> ParsedBody:
-    """The CSV rows as a frame of strings; the header may only name known columns."""
+    """The CSV rows as a frame (text, or numbers parsed for a plain file); the header may only
+    name known columns."""
     frame = read_observations_csv(body)
     if len(frame) > max_rows:
         raise TooManyRowsError(len(frame), max_rows)

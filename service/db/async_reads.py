@@ -73,5 +73,6 @@ class AsyncReads:
     async def close(self) -> None:
         """Close the connections (a later read opens a new pool, e.g. in another loop)."""
         pool, self._pool, self._loop = self._pool, None, None
+        self._opening = asyncio.Lock()  # a lock, too, belongs to the loop that waited on it
         if pool is not None:
             await pool.close()
