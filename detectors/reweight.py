@@ -51,6 +51,7 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
+from .bounds import Bounds
 from .data import ObservationTable
 from .errors import InputError, Problem, UndefinedEstimateError
 
@@ -104,17 +105,27 @@ class Decomposition:
 
 @dataclass(frozen=True, slots=True)
 class Comparison:
-    """One non-reference arm against the reference arm."""
+    """One non-reference arm against the reference arm.
+
+    ``bounds`` and ``relative_bounds``: trimming bounds on the difference and on the relative
+    lift (:mod:`detectors.honest`); ``None`` until they are attached.
+    """
 
     arm: str
     naive: Estimate
     adjusted: Estimate
     decomposition: Decomposition
+    bounds: Bounds | None = None
+    relative_bounds: Bounds | None = None
 
     def to_dict(self) -> dict[str, Any]:
+        empty = {"low": None, "high": None, "ci_low": None, "ci_high": None}
         return {"arm": self.arm, "naive": self.naive.to_dict(),
                 "adjusted": self.adjusted.to_dict(),
-                "decomposition": self.decomposition.to_dict()}
+                "decomposition": self.decomposition.to_dict(),
+                "bounds": self.bounds.to_dict() if self.bounds else empty,
+                "relative_bounds": (self.relative_bounds.to_dict() if self.relative_bounds
+                                    else empty)}
 
 
 @dataclass(frozen=True, slots=True)
