@@ -44,7 +44,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import optimize, special
 
 
 @dataclass(frozen=True, slots=True)
@@ -115,15 +115,15 @@ def imbens_manski_c(width: float, se_low: float, se_high: float, level: float = 
         >>> round(imbens_manski_c(0.0, 1.0, 1.0), 4), round(imbens_manski_c(100.0, 1.0, 1.0), 4)
         (1.96, 1.6449)
     """
-    two_sided = float(stats.norm.ppf(0.5 + level / 2))
+    two_sided = float(special.ndtri(0.5 + level / 2))
     scale = max(se_low, se_high)
     if not math.isfinite(width) or not math.isfinite(scale) or scale <= 0 or width <= 0:
         return two_sided
     ratio = width / scale
-    one_sided = float(stats.norm.ppf(level))
+    one_sided = float(special.ndtri(level))
 
     def gap(c: float) -> float:
-        return float(stats.norm.cdf(c + ratio) - stats.norm.cdf(-c)) - level
+        return float(special.ndtr(c + ratio) - special.ndtr(-c)) - level
 
     if gap(one_sided) >= 0:   # the set is so wide that the one-sided quantile already covers
         return one_sided

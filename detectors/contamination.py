@@ -58,7 +58,9 @@ def cells_from_document(document: Mapping[str, Any]) -> tuple[ContaminatedCell, 
 
     With an ``incidents`` key: each incident's ``cells`` (``[{date, source, units}]``) in the
     incident's ``arm``. Without it (documents written before incidents existed): the
-    alert-level ``flagged_days``, each with its ``inflow_arm`` and per-source ``excess``.
+    alert-level ``flagged_days``, each with its ``inflow_arm`` and per-source ``excess``
+    (observed minus expected, converted to units that entered the arm alone with the day's
+    ``estimated_inflow`` over its arm excess).
     Malformed entries are skipped (the document was written by the service itself).
     """
     out: list[ContaminatedCell] = []
@@ -74,9 +76,18 @@ def cells_from_document(document: Mapping[str, Any]) -> tuple[ContaminatedCell, 
     for day in document.get("flagged_days") or ():
         if day.get("severity") != "alert":
             continue
+        # A flagged day's per-source excess is observed minus expected (c_k - p_k n); the
+        # units that entered arm k alone are that over (1 - p_k), which is the day's
+        # estimated_inflow over its arm excess.
+        arm_excess = (day.get("excess") or {}).get(day.get("inflow_arm"))
+        inflow = day.get("estimated_inflow")
+        if not _positive(arm_excess) or not _positive(inflow):
+            continue
+        scale = float(inflow) / float(arm_excess)
         for source in day.get("sources") or ():
+            excess = source.get("excess")
             made = _cell(day.get("date"), source.get("source"), day.get("inflow_arm"),
-                         source.get("excess"))
+                         excess * scale if _positive(excess) else None)
             if made is not None:
                 out.append(made)
     return tuple(out)
@@ -86,6 +97,11 @@ def cells_from_episodes(episodes: Iterable[Episode]) -> tuple[ContaminatedCell, 
     """The contaminated cells of detector episodes (each cell in its episode's arm)."""
     return tuple(ContaminatedCell(c.date, c.source, e.arm, float(c.units))
                  for e in episodes for c in e.cells if c.units != 0)
+
+
+def _positive(value: Any) -> bool:
+    return (not isinstance(value, bool) and isinstance(value, int | float)
+            and math.isfinite(value) and value > 0)
 
 
 def _cell(date: Any, source: Any, arm: Any, units: Any) -> ContaminatedCell | None:

@@ -162,10 +162,11 @@ def layout(table: ObservationTable, metric: str, cells: Sequence[Cell],
         ignored = len(index) - len(known_cells)
         if known_cells:
             d, a, s, u = (np.array(x) for x in zip(*known_cells, strict=True))
-            np.add.at(excess, (d.astype(int), a.astype(int), s.astype(int)), u.astype(float))
-        with np.errstate(divide="ignore", invalid="ignore"):
-            measured = np.where(table.entered > 0, cube[..., 0] / table.entered, 1.0)
-        excess *= measured
+            where = (d.astype(int), a.astype(int), s.astype(int))
+            entered = table.entered[where]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                measured = np.where(entered > 0, cube[..., 0][where] / entered, 1.0)
+            np.add.at(excess, where, u.astype(float) * measured)
     if schedule is None or len(schedule.steps) == 1 or table.n_days == 0:
         period = np.zeros(table.n_days, dtype=int)
         starts: tuple[dt.date, ...] = (table.dates[0].item(),) if table.n_days else ()
@@ -182,17 +183,18 @@ def layout(table: ObservationTable, metric: str, cells: Sequence[Cell],
 
 
 def _by_period(values: np.ndarray, period: np.ndarray, periods: int) -> np.ndarray:
-    """Sum a ``(days, ...)`` array into ``(periods, ...)``."""
-    out = np.zeros((periods, *values.shape[1:]))
-    np.add.at(out, period, values)
-    return out
+    """Sum a ``(days, ...)`` array into ``(periods, ...)`` (periods are runs of days)."""
+    if periods == 1:
+        return values.sum(axis=0, keepdims=True).astype(float)
+    starts = np.flatnonzero(np.r_[True, np.diff(period) != 0])
+    return np.add.reduceat(values.astype(float), starts, axis=0)
 
 
 def regular_weights(lay: Layout) -> np.ndarray:
     """Regular-population size per (period, source): measured units less the excess, pooled
     over arms (``(periods, sources)``, clipped at 0)."""
     periods = len(lay.period_starts)
-    regular = (lay.cube[..., 0] - lay.excess).sum(axis=1)                # (days, sources)
+    regular = lay.cube[..., 0].sum(axis=1) - lay.excess.sum(axis=1)      # (days, sources)
     return np.clip(_by_period(regular, lay.period, periods), 0.0, None)
 
 
@@ -225,51 +227,59 @@ def cohort_names(lay: Layout, sources: Sequence[str]) -> tuple[str, ...]:
 
 
 def bounds_parts(lay: Layout, confidence: float = 0.95) -> list[BoundsParts]:
-    """Trimming bounds of each non-reference arm against the reference arm (see module doc)."""
+    """Trimming bounds of each non-reference arm against the reference arm (see module doc).
+
+    Only the contaminated cells are trimmed; every other cell enters with its plain sums, so
+    the cost grows with the cells an incident touched, not with the whole cube.
+    """
     periods = len(lay.period_starts)
-    n, total, total_sq = lay.cube[..., 0], lay.cube[..., 1], lay.cube[..., 2]
-    inflow = np.clip(lay.excess, 0.0, None)
-    missing = np.clip(-lay.excess, 0.0, None)
+    full = _by_period(lay.cube, lay.period, periods)                    # (P, arms, S, 3)
+    arm_stats = full.sum(axis=(0, 2))                                    # (arms, 3)
+    fallback = _unit_variance(arm_stats[:, 0], arm_stats[:, 1], arm_stats[:, 2])
+    cohort_var = _unit_variance(full[..., 0], full[..., 1], full[..., 2])
+    cohort_var = np.where(full[..., 0] > 1, cohort_var, fallback[None, :, None])
+    weight_all = regular_weights(lay)                                    # (P, S)
+    touched_day, touched_source = np.nonzero((lay.excess != 0).any(axis=1))
+    cell = (lay.period[touched_day], touched_source)
+    sub = lay.cube[touched_day, :, touched_source]                       # (K, arms, 3)
+    excess = lay.excess[touched_day, :, touched_source]                  # (K, arms)
+    n = sub[..., 0]
+    inflow, missing = np.clip(excess, 0.0, None), np.clip(-excess, 0.0, None)
     with np.errstate(divide="ignore", invalid="ignore"):
-        lost_share = np.where(missing > 0, missing / (n + missing), 0.0)   # (days, arms, src)
-    unit_var = _unit_variance(n.sum(axis=0), total.sum(axis=0), total_sq.sum(axis=0))
-    weight_all = regular_weights(lay)                                     # (P, S)
+        lost_share = np.where(missing > 0, missing / (n + missing), 0.0)
     out = []
     for a in range(1, n.shape[1]):
-        pair = (0, a)
         ends = {}
         for own, other in ((0, a), (a, 0)):
-            trim = inflow[:, own] + n[:, own] * lost_share[:, other]
-            trim = np.minimum(trim, n[:, own])
-            low, high = trimmed_mean_bounds(n[:, own], total[:, own], total_sq[:, own], trim,
+            trim = np.minimum(inflow[:, own] + n[:, own] * lost_share[:, other], n[:, own])
+            low, high = trimmed_mean_bounds(n[:, own], sub[:, own, 1], sub[:, own, 2], trim,
                                             binary=lay.binary)
             kept = n[:, own] - trim
-            low_sum = _by_period(np.where(kept > 0, kept * low, 0.0), lay.period, periods)
-            high_sum = _by_period(np.where(kept > 0, kept * high, 0.0), lay.period, periods)
-            kept_sum = _by_period(kept, lay.period, periods)
-            all_sum = _by_period(total[:, own], lay.period, periods)
-            all_n = _by_period(n[:, own], lay.period, periods)
-            # Per (period, source): within-cohort variance of a unit over the whole experiment
-            # (the cohort's own variance is rough when the cohort is small).
-            var = np.broadcast_to(_cohort_variance(lay, own, periods, unit_var[own]),
-                                  kept_sum.shape)
-            ends[own] = (low_sum, high_sum, kept_sum, all_sum, all_n, var)
-        kept_ok = (ends[0][2] > 0) & (ends[a][2] > 0) & (weight_all > 0)
+            sums = []
+            for piece in (np.where(kept > 0, kept * low, 0.0),
+                          np.where(kept > 0, kept * high, 0.0)):
+                total = full[:, own, :, 1].copy()
+                np.add.at(total, cell, piece - sub[:, own, 1])
+                sums.append(total)
+            kept_sum = full[:, own, :, 0].copy()
+            np.add.at(kept_sum, cell, kept - n[:, own])
+            ends[own] = (sums[0], sums[1], kept_sum)
+        kept_ok = (ends[0][2] > 1e-9) & (ends[a][2] > 1e-9) & (weight_all > 0)
         if not kept_ok.any():
             nan_bounds = Bounds(None, None, None, None)
             out.append(BoundsParts(nan_bounds, nan_bounds, float("nan")))
             continue
         pi = np.where(kept_ok, weight_all, 0.0)
         pi = pi / pi.sum()
-        mean_lo, mean_hi, var_of = {}, {}, {}
-        untrimmed = {}
-        for arm in pair:
-            low_sum, high_sum, kept_sum, all_sum, all_n, var = ends[arm]
+        mean_lo, mean_hi, var_of, untrimmed = {}, {}, {}, {}
+        for arm in (0, a):
+            low_sum, high_sum, kept_sum = ends[arm]
+            all_n = full[:, arm, :, 0]
             with np.errstate(divide="ignore", invalid="ignore"):
                 lo = np.where(kept_ok, low_sum / kept_sum, 0.0)
                 hi = np.where(kept_ok, high_sum / kept_sum, 0.0)
-                plain = np.where(kept_ok & (all_n > 0), all_sum / all_n, 0.0)
-                v = np.where(kept_ok, var / kept_sum, 0.0)
+                plain = np.where(kept_ok & (all_n > 0), full[:, arm, :, 1] / all_n, 0.0)
+                v = np.where(kept_ok, cohort_var[:, arm] / kept_sum, 0.0)
             mean_lo[arm], mean_hi[arm] = float((pi * lo).sum()), float((pi * hi).sum())
             var_of[arm] = float((pi**2 * v).sum())
             untrimmed[arm] = float((pi * plain).sum())
@@ -279,13 +289,6 @@ def bounds_parts(lay: Layout, confidence: float = 0.95) -> list[BoundsParts]:
         relative = _relative_bounds(mean_lo, mean_hi, var_of, a, confidence)
         out.append(BoundsParts(difference, relative, untrimmed[a] - untrimmed[0]))
     return out
-
-
-def _cohort_variance(lay: Layout, arm: int, periods: int, fallback: float) -> np.ndarray:
-    """Unit variance per (period, source) in one arm, over all its units."""
-    stats_ = _by_period(lay.cube[:, arm], lay.period, periods)           # (P, S, 3)
-    var = _unit_variance(stats_[..., 0], stats_[..., 1], stats_[..., 2])
-    return np.where(stats_[..., 0] > 1, var, fallback)
 
 
 def _relative_bounds(low: dict[int, float], high: dict[int, float], var: dict[int, float],
@@ -360,7 +363,7 @@ def honest_effect(table: ObservationTable, metric: str, cells: Sequence[Cell],
 
 def naive_estimates(lay: Layout, z: float) -> list[Any]:
     """Plain difference of arm means over every measured unit, Welch-type SE."""
-    arm_stats = lay.cube.sum(axis=(0, 2))                                # (arms, 3)
+    arm_stats = lay.cube.sum(axis=0).sum(axis=1)         # (arms, 3); day axis first: contiguous
     n = arm_stats[:, 0]
     if (n <= 0).any():
         raise InputError([Problem("metric", "some arm has no measured units; there is "
