@@ -49,7 +49,7 @@ from __future__ import annotations
 
 import datetime as dt
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, Protocol
 
 import numpy as np
@@ -94,6 +94,8 @@ CAVEAT_EXCESS_KNOWN = (
 CAVEAT_SHORTFALL = (
     "A shortfall removed units whose values are unknown: the bounds then describe the units "
     "that would have stayed in either arm (Lee's trimming of the other arms), not every unit.")
+CAVEAT_NO_CELLS = ("No incident marks any cell as contaminated, so the bounds are the "
+                   "estimate itself.")
 CAVEAT_RAMP = (
     "The allocation changed during the experiment. Pooling across a change mixes time with arm "
     "(the Simpson's-paradox case of changing weights), so the honest estimate and the bounds "
@@ -397,15 +399,24 @@ def _caveats(lay: Layout, cells: Sequence[Cell], pi: np.ndarray, n: np.ndarray,
         caveats.append(f"{lay.ignored_cells} contaminated cell(s) name a day, source or arm "
                        "that is not in the data and were ignored.")
     if not cells:
-        caveats.append("No incident marks any cell as contaminated, so the bounds are the "
-                       "estimate itself.")
+        caveats.append(CAVEAT_NO_CELLS)
     return caveats
 
 
 def attach_bounds(result: Reweighting, table: ObservationTable, cells: Sequence[Cell],
                   schedule: AllocationSchedule | None = None, *,
+                  exclude_sources: Sequence[str] = (), exclude_dates: Sequence[dt.date] = (),
                   confidence: float = 0.95) -> Reweighting:
-    """``result`` with the trimming bounds of ``cells`` on every comparison (any target)."""
+    """``result`` with the trimming bounds of ``cells`` on every comparison (any target).
+
+    ``exclude_sources`` and ``exclude_dates``: the exclusions ``result`` was computed with
+    (already validated by :func:`detectors.reweight.reweight`); the bounds leave them out too.
+    """
+    if exclude_sources or exclude_dates:
+        dropped = set(exclude_sources)
+        table = table.select(
+            sources=[s for s in table.sources if s not in dropped],
+            day_mask=~np.isin(table.dates, np.array(list(exclude_dates), dtype="datetime64[D]")))
     lay = layout(table, result.metric, cells, schedule)
     parts = bounds_parts(lay, confidence)
     comparisons = tuple(
@@ -421,3 +432,47 @@ def attach_bounds(result: Reweighting, table: ObservationTable, cells: Sequence[
                        "target of the re-weighted estimate.")
     return Reweighting(result.metric, result.target, result.by, comparisons, result.cohorts,
                        tuple(caveats))
+
+
+def default_effect(table: ObservationTable, metric: str, cells: Sequence[Cell],
+                   schedule: AllocationSchedule | None = None, *, incidents: int = 0
+                   ) -> dict[str, Any]:
+    """The document of the estimate chosen when a caller gives no option, with ``default``:
+    the target, cohorts and excluded cells used and the reason (service and command line).
+
+    When no source has clean units in every arm (an imbalance on every day), the estimate falls
+    back to every cell, said so in ``reason``; the bounds still trim the contaminated cells.
+    """
+    cell_keys = {(c.date, c.source) for c in cells}
+    if cells:
+        what = (f"{incidents} incident(s)" if incidents else "alert-level flagged days")
+        reason = (f"The latest diagnosis has {what} touching {len(cell_keys)} (day, source) "
+                  "cell(s). Re-weighting cohorts an inflow created cannot remove its selection, "
+                  "so the default leaves those cells out in every arm and weights entry sources "
+                  "(within allocation periods) by the regular population: every unit less the "
+                  "incidents' excess.")
+    else:
+        reason = ("The latest diagnosis marks no cell as contaminated, so the default "
+                  "post-stratifies by entry source (within allocation periods) to the pooled "
+                  "mix of every unit.")
+    excluded = cells
+    try:
+        result = honest_effect(table, metric, cells, schedule)
+    except InputError:
+        if not cells:
+            raise
+        everything = honest_effect(table, metric, (), schedule)
+        everything = replace(everything, caveats=tuple(
+            c for c in everything.caveats if c != CAVEAT_NO_CELLS))
+        result = attach_bounds(everything, table, cells, schedule)
+        excluded = ()
+        reason += (" No entry source has clean units in every arm, so the estimate below "
+                   "uses every cell, contaminated ones included, and can be biased; the bounds "
+                   "are the honest answer.")
+    document = result.to_dict()
+    document["default"] = {
+        "target": result.target, "by": list(result.by),
+        "excluded_cells": [{"date": c.date.isoformat(), "source": c.source, "arm": c.arm,
+                            "units": round(c.units, 1)} for c in excluded],
+        "reason": reason}
+    return document

@@ -10,6 +10,13 @@ from pathlib import Path
 from typing import Any
 
 from detectors import AllocationSchedule, InputError, ObservationTable, diagnose, reweight
+from detectors.contamination import (
+    ContaminatedCell,
+    cells_from_document,
+    cells_from_episodes,
+    incident_impact,
+)
+from detectors.honest import UNCONTAMINATED, attach_bounds, default_effect, honest_effect
 
 from ..csvio import read_observations_csv
 from ..traffic import DEFAULT_SENSITIVITY_DAYS, ArmTraffic, sensitivity_document
@@ -29,10 +36,14 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
         description="Post-stratify a metric over entry cohorts and compare with the naive gap.")
     _common(rew)
     rew.add_argument("--metric", required=True, help="metric name (columns NAME.n, .sum, .sum_sq)")
-    rew.add_argument("--target", default="reference_arm",
-                     choices=["reference_arm", "pooled_unflagged"],
-                     help="cohort mix to re-weight to (default: the reference arm's)")
-    rew.add_argument("--by", default="source", choices=["source", "source,window"],
+    rew.add_argument("--target", default=None,
+                     choices=["reference_arm", "pooled_unflagged", "uncontaminated"],
+                     help="cohort mix to re-weight to (default: the honest estimate, "
+                     "'uncontaminated', without the flagged cells)")
+    rew.add_argument("--cohort-weights", type=Path, metavar="FILE.json",
+                     help='custom target: a JSON object {"cohort": weight, ...} (cohort names '
+                     "as in the output, e.g. organic or organic|flagged with --by source,window)")
+    rew.add_argument("--by", default=None, choices=["source", "source,window"],
                      help="cohorts: entry source, or source x flagged/unflagged days")
     rew.add_argument("--exclude-sources", default="", help="comma-separated sources to drop")
     rew.add_argument("--exclude-dates", default="", help="comma-separated ISO dates to drop")
@@ -81,19 +92,70 @@ def run_analyze(args: argparse.Namespace) -> int:
 
 
 def run_reweight(args: argparse.Namespace) -> int:
+    """Without options the honest estimate (as the service's default); ``--target``,
+    ``--cohort-weights``, ``--by`` or exclusions re-weight as asked. Bounds and the impact of
+    the flagged cells are printed either way."""
     try:
         table, schedule = _load(args)
         exclude_dates = [_parse_date(d, "--exclude-dates")
                          for d in args.exclude_dates.split(",") if d.strip()]
         exclude_sources = [s.strip() for s in args.exclude_sources.split(",") if s.strip()]
-        flagged = diagnose(table, schedule).alert_days
-        result = reweight(table, args.metric, target=args.target, by=tuple(args.by.split(",")),
-                          exclude_sources=exclude_sources, exclude_dates=exclude_dates,
-                          flagged_dates=flagged)
+        weights = _cohort_weights(args.cohort_weights) if args.cohort_weights else None
+        if weights is not None and args.target is not None:
+            raise InputError("--cohort-weights sets a custom target; leave out --target",
+                             field="--cohort-weights")
+        diagnosis = diagnose(table, schedule)
+        cells = cells_from_document(diagnosis.to_dict())
+        explicit = (args.target is not None or weights is not None or args.by is not None
+                    or exclude_dates or exclude_sources)
+        if not explicit:
+            document = default_effect(table, args.metric, cells, schedule)
+        elif args.target == UNCONTAMINATED:
+            if args.by is not None or exclude_dates or exclude_sources:
+                raise InputError("--target uncontaminated chooses its own cohorts: leave out "
+                                 "--by and the exclusions", field="--target")
+            document = honest_effect(table, args.metric, cells, schedule).to_dict()
+        else:
+            target = "custom" if weights is not None else args.target or "reference_arm"
+            result = reweight(table, args.metric, target=target, weights=weights,
+                              by=tuple((args.by or "source").split(",")),
+                              exclude_sources=exclude_sources, exclude_dates=exclude_dates,
+                              flagged_dates=diagnosis.alert_days)
+            document = attach_bounds(result, table, cells, schedule,
+                                     exclude_sources=exclude_sources,
+                                     exclude_dates=exclude_dates).to_dict()
+        document["impact"] = _impacts(table, schedule, args.metric, diagnosis, cells)
     except InputError as error:
         return _bad_input(error)
-    _print(result.to_dict(), args.json, format_reweighting)
+    _print(document, args.json, format_reweighting)
     return EXIT_OK
+
+
+def _cohort_weights(path: Path) -> dict[str, float]:
+    """``{cohort: weight}`` from a JSON file; checked further by the re-weighting itself."""
+    try:
+        weights = json.loads(path.read_text(encoding="utf-8"))
+    except OSError as error:
+        raise InputError(f"cannot read {path}: {error.strerror or error}",
+                         field="--cohort-weights") from None
+    except (ValueError, UnicodeDecodeError) as error:
+        raise InputError(f"{path} is not JSON: {error}", field="--cohort-weights") from None
+    if not isinstance(weights, dict) or not weights:
+        raise InputError(f'{path} must hold a JSON object {{"cohort": weight, ...}}',
+                         field="--cohort-weights")
+    return weights
+
+
+def _impacts(table: ObservationTable, schedule: AllocationSchedule, metric: str,
+             diagnosis: Any, cells: tuple[ContaminatedCell, ...]) -> list[dict[str, Any]]:
+    """Impact of each incident (episode) on the metric; without episodes, of the flagged days
+    together."""
+    episodes = tuple(getattr(diagnosis, "episodes", ()) or ())
+    groups = ([(f"{e.shape} into {e.arm} {e.start.isoformat()}..{e.end.isoformat()}",
+                cells_from_episodes([e])) for e in episodes] if episodes
+              else [("the alert-level flagged days", cells)] if cells else [])
+    return [{"incident": name, **incident_impact(table, schedule, metric, group).to_dict()}
+            for name, group in groups]
 
 
 def _parse_date(text: str, field: str) -> dt.date:

@@ -95,6 +95,10 @@ def format_reweighting(doc: dict[str, Any]) -> str:
     out = lines.append
     out(f"Effect on {doc['metric']}, naive and re-weighted to the {doc['target']} mix "
         f"(cohorts by {'+'.join(doc['by'])}; 95% intervals)\n")
+    if doc.get("default"):
+        out(f"\nDefault chosen: {doc['default']['target']} "
+            f"({len(doc['default']['excluded_cells'])} contaminated cell(s) left out)\n")
+        out(_wrap(doc["default"]["reason"]))
     for comparison in doc["comparisons"]:
         out(f"\n  {comparison['arm']}\n")
         out(f"    naive     {_estimate(comparison['naive'])}\n")
@@ -102,6 +106,18 @@ def format_reweighting(doc: dict[str, Any]) -> str:
         parts = comparison["decomposition"]
         out(f"    naive gap = composition {parts['composition']:+.4f} + within cohorts "
             f"{parts['within']:+.4f}\n")
+        bounds = comparison.get("bounds") or {}
+        if bounds.get("low") is not None:
+            out(f"    bounds    [{bounds['low']:+.4f}, {bounds['high']:+.4f}]  95% "
+                f"[{_num(bounds['ci_low'])}, {_num(bounds['ci_high'])}]  (trimming, Lee 2009)\n")
+    for impact in doc.get("impact") or ():
+        if impact.get("worst_case") is None:
+            continue
+        bias = impact.get("estimated_bias")
+        out(f"\n  {impact['incident']}: could move the effect on {doc['metric']} by at most "
+            f"{impact['worst_case']:.4g} ({_num(impact['in_se'], '.2f')} SE)"
+            + (f"; estimated bias of the naive difference {bias:+.4g}" if bias is not None
+               else "") + "\n")
     out("\n  cohorts (target weight)\n")
     for cohort in doc["cohorts"]:
         sizes = "  ".join(f"{arm} n={v['n']:,}" for arm, v in cohort["arms"].items())
@@ -110,3 +126,7 @@ def format_reweighting(doc: dict[str, Any]) -> str:
     for caveat in doc["caveats"]:
         out(_wrap(caveat))
     return "".join(lines)
+
+
+def _num(value: float | None, spec: str = "+.4f") -> str:
+    return "n/a" if value is None else format(value, spec)

@@ -5,15 +5,14 @@ from __future__ import annotations
 import datetime as dt
 from typing import Any
 
-import numpy as np
 from fastapi import APIRouter, Depends
 from fastapi.responses import JSONResponse
 from sqlalchemy.orm import Session
 
-from detectors import InputError, ObservationTable, reweight
+from detectors import ObservationTable, reweight
 from detectors.allocation import AllocationSchedule
 from detectors.contamination import ContaminatedCell, cells_from_document
-from detectors.honest import UNCONTAMINATED, attach_bounds, honest_effect
+from detectors.honest import UNCONTAMINATED, attach_bounds, default_effect, honest_effect
 from detectors.reweight import Reweighting
 
 from ..analysis import latest_snapshot, load_table, schedule_for
@@ -61,7 +60,7 @@ def reweight_effect(experiment_id: str, body: ReweightRequest,
     cells = cells_from_document(snapshot.document)
     schedule = schedule_for(experiment)
     if body.is_default:
-        document = default_effect(table, schedule, body.metric, cells,
+        document = default_effect(table, body.metric, cells, schedule,
                                   incidents=len(snapshot.document.get("incidents") or ()))
     else:
         document = explicit_effect(table, schedule, body, cells,
@@ -79,59 +78,8 @@ def explicit_effect(table: ObservationTable, schedule: AllocationSchedule,
     result = reweight(table, body.metric, target=body.target, weights=body.weights,
                       by=tuple(body.by), exclude_sources=body.exclude_sources,
                       exclude_dates=body.exclude_dates, flagged_dates=flagged)
-    kept = _without(table, body.exclude_sources, body.exclude_dates)
-    return attach_bounds(result, kept, cells, schedule)
-
-
-def default_effect(table: ObservationTable, schedule: AllocationSchedule, metric: str,
-                   cells: tuple[ContaminatedCell, ...], *, incidents: int = 0
-                   ) -> dict[str, Any]:
-    """The honest estimate the service chooses without options, and why (``default``).
-
-    When no source has clean units in every arm (an imbalance on every day), the estimate falls
-    back to every cell, said so in ``reason``; the bounds still trim the contaminated cells.
-    """
-    cell_keys = {(c.date, c.source) for c in cells}
-    if cells:
-        what = (f"{incidents} incident(s)" if incidents else "alert-level flagged days")
-        reason = (f"The latest diagnosis has {what} touching {len(cell_keys)} (day, source) "
-                  "cell(s). Re-weighting cohorts an inflow created cannot remove its selection, "
-                  "so the default leaves those cells out in every arm and weights entry sources "
-                  "(within allocation periods) by the regular population: every unit less the "
-                  "incidents' excess.")
-    else:
-        reason = ("The latest diagnosis marks no cell as contaminated, so the default "
-                  "post-stratifies by entry source (within allocation periods) to the pooled "
-                  "mix of every unit.")
-    excluded = cells
-    try:
-        result = honest_effect(table, metric, cells, schedule)
-    except InputError:
-        if not cells:
-            raise
-        result = attach_bounds(honest_effect(table, metric, (), schedule), table, cells,
-                               schedule)
-        excluded = ()
-        reason += (" No entry source has clean units in every arm, so the estimate below "
-                   "uses every cell, contaminated ones included, and can be biased; the bounds "
-                   "are the honest answer.")
-    document = result.to_dict()
-    document["default"] = {
-        "target": result.target, "by": list(result.by),
-        "excluded_cells": [{"date": c.date.isoformat(), "source": c.source, "arm": c.arm,
-                            "units": round(c.units, 1)} for c in excluded],
-        "reason": reason}
-    return document
-
-
-def _without(table: ObservationTable, sources: list[str], dates: list[dt.date]
-             ) -> ObservationTable:
-    """The table less excluded sources and days (already validated by ``reweight``)."""
-    if not sources and not dates:
-        return table
-    keep = [s for s in table.sources if s not in set(sources)]
-    day_mask = ~np.isin(table.dates, np.array(dates, dtype="datetime64[D]"))
-    return table.select(sources=keep, day_mask=day_mask)
+    return attach_bounds(result, table, cells, schedule, exclude_sources=body.exclude_sources,
+                         exclude_dates=body.exclude_dates)
 
 
 def flagged_dates(document: dict[str, Any]) -> list[dt.date]:
