@@ -109,11 +109,8 @@ def one_rep(task: tuple[str, int]) -> dict[str, Any]:
         out["previous_default"] = _scored(comparison.adjusted.ci_low,
                                           comparison.adjusted.ci_high, truth,
                                           comparison.adjusted.difference)
-        out["naive"] = _scored(comparison.naive.ci_low, comparison.naive.ci_high, truth,
-                               comparison.naive.difference)
     except InputError as error:   # undefined: a cohort without units in some arm
         out["previous_default"] = {"covers": False, "error": str(error)[:120]}
-        out["naive"] = {"covers": False, "error": "not computed"}
     document = diagnose(sim.table, sim.schedule).to_dict()
     for source, cells in (("truth", truth_cells(sim)), ("detector", cells_from_document(document))):
         try:
@@ -123,6 +120,9 @@ def one_rep(task: tuple[str, int]) -> dict[str, Any]:
             out[f"{source}.bounds"] = {"covers": False, "error": "not computed"}
             continue
         (comparison,) = honest.comparisons
+        if source == "truth":      # the plain difference of arm means, the same in every path
+            out["naive"] = _scored(comparison.naive.ci_low, comparison.naive.ci_high, truth,
+                                   comparison.naive.difference)
         se = (comparison.adjusted.ci_high - comparison.adjusted.ci_low) / (2 * 1.959964)
         out[f"{source}.honest"] = _scored(comparison.adjusted.ci_low,
                                           comparison.adjusted.ci_high, truth,
@@ -138,6 +138,8 @@ def one_rep(task: tuple[str, int]) -> dict[str, Any]:
 
 def summarise(reps: list[dict[str, Any]]) -> dict[str, Any]:
     rows: dict[str, Any] = {}
+    missing = {"covers": False, "error": "not computed"}
+    reps = [{key: r.get(key, missing) for key in (*r, "naive")} for r in reps]
     for placement in PLACEMENTS:
         mine = [r for r in reps if r["placement"] == placement]
         row: dict[str, Any] = {"runs": len(mine)}
