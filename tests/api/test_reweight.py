@@ -148,3 +148,23 @@ def test_explicit_uncontaminated_target_takes_no_cohort_options(
     assert ok.json()["target"] == "uncontaminated"
     assert_problem(client.post(URL, json={"metric": "routes_saved", "target": "uncontaminated",
                                           "by": ["source", "window"]}), 422)
+
+
+def test_default_estimates_within_allocation_periods_after_a_ramp(
+        client: Any, experiment: Any) -> None:
+    upload_csv(client, demo_csv_text())
+    table = ObservationTable.from_frame(read_observations_csv(DEMO_CSV), scenario.ARMS)
+    ramp = scenario.START + dt.timedelta(days=7)
+    steps = [{"from": scenario.START.isoformat(), "weights": [0.5, 0.5]},
+             {"from": ramp.isoformat(), "weights": [0.4, 0.6]}]
+    assert client.patch("/v1/experiments/route-cards",
+                        json={"allocation": steps}).status_code == 200
+    answer = client.post(URL, json={"metric": "routes_saved"}).json()
+    assert answer["by"] == ["period", "source"] == answer["default"]["by"]
+    assert {c["cohort"].split("|")[0] for c in answer["cohorts"]} == {
+        f"from {scenario.START.isoformat()}", f"from {ramp.isoformat()}"}
+    assert any("Simpson" in c for c in answer["caveats"])
+    schedule = AllocationSchedule.from_steps(scenario.ARMS, steps)
+    document = client.get("/v1/experiments/route-cards/diagnosis").json()
+    expected = honest_effect(table, "routes_saved", cells_from_document(document), schedule)
+    assert answer["comparisons"] == json.loads(json.dumps(expected.to_dict()["comparisons"]))
