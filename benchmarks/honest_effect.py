@@ -217,6 +217,32 @@ def _cell(entry: dict[str, Any]) -> str:
     return f"{100 * entry['coverage']:.1f}% ({100 * low:.1f}-{100 * high:.1f}){errors}"
 
 
+def goal_lines(summary: dict[str, Any]) -> list[str]:
+    """Which placements meet the goals, and why a point-identified set sits at 95%."""
+    misses = []
+    for source in ("truth", "detector"):
+        for placement, row in summary["placements"].items():
+            honest = row[f"{source}.honest"]["coverage"]
+            bounds = row[f"{source}.bounds"]
+            if not 0.93 <= honest <= 0.97:
+                misses.append(f"honest, {placement} ({source} cells): {100 * honest:.1f}%")
+            if bounds["coverage"] < 0.95:
+                point = (bounds["median_width_over_se"] == 0
+                         and bounds["wilson95"][1] >= 0.95)
+                misses.append(f"bounds, {placement} ({source} cells): "
+                              f"{100 * bounds['coverage']:.1f}%"
+                              + (" -- the identified set is a point here (the incident's source "
+                                 "has no regular units, so nothing is trimmed that the "
+                                 "estimate keeps), and its interval is an ordinary 95% "
+                                 "interval; the Wilson interval contains 95%" if point else ""))
+    if not misses:
+        return ["Goals: met in every placement."]
+    return ["Goals missed as measured:", "", *[f"- {miss}" for miss in misses], "",
+            "Bounds width is in units of the honest estimate's standard error: the moment "
+            "bound is wide where the inflow hides in the largest source (organic), the honest "
+            "answer when only n, sum and sum_sq are known."]
+
+
 def write(summary: dict[str, Any]) -> None:
     reps = summary["reps_per_placement"]
     lines = [START, "## Honest effect: coverage under contamination", "",
@@ -245,6 +271,7 @@ def write(summary: dict[str, Any]) -> None:
         lines.append(f"| {placement} | {_cell(row['detector.honest'])} | "
                      f"{_cell(row['detector.bounds'])} | "
                      f"{'-' if width is None else f'{width:.2f}'} |")
+    lines += ["", *goal_lines(summary)]
     impact = summary["impact_ms"]
     lines += ["", "`incident_impact` (median of 30 calls, one incident, one metric): "
               f"{impact['28x2x5']:.2f} ms at 28 days x 2 arms x 5 sources (goal: a few ms), "
