@@ -17,11 +17,14 @@ package we could find (Lee's Job Corps data is not shipped), so none is used her
 from __future__ import annotations
 
 import datetime as dt
+import json
 from typing import Any
 
 import numpy as np
 import pandas as pd
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import optimize, stats
 
 from detectors.allocation import AllocationSchedule
@@ -392,3 +395,38 @@ def test_incident_in_the_reference_arm_takes_the_worst_comparison() -> None:
     assert len(result.comparisons) == 2
     worst = max(c.bounds.high - c.bounds.low for c in result.comparisons)
     assert impact.worst_case is not None and impact.worst_case <= worst + 1e-12
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.data())
+def test_impact_and_honest_effect_never_fail_unexpectedly(data: st.DataObject) -> None:
+    # incident_impact runs on every upload: any stored table and any cells give figures or
+    # None, never an exception; honest_effect gives an answer or an InputError.
+    days, sources = data.draw(st.integers(1, 4)), ["organic", "push", "sms"]
+    rows = []
+    for d in range(days):
+        for arm in ARMS:
+            for source in sources[:data.draw(st.integers(1, 3))]:
+                n = data.draw(st.integers(0, 40))
+                mean = data.draw(st.floats(-5, 5))
+                binary = data.draw(st.booleans())
+                total = float(round(n * abs(mean) / 5)) if binary else n * mean
+                total = min(total, n) if binary else total
+                sq = total if binary else n * (mean**2 + data.draw(st.floats(0, 4)))
+                rows.append({"date": day(d).isoformat(), "arm": arm, "source": source,
+                             "entered": n + data.draw(st.integers(0, 5)), "m.n": n,
+                             "m.sum": total, "m.sum_sq": sq})
+    table = ObservationTable.from_frame(pd.DataFrame(rows), ARMS)
+    cells = [ContaminatedCell(day(data.draw(st.integers(0, 5))),
+                              data.draw(st.sampled_from([*sources, "elsewhere"])),
+                              data.draw(st.sampled_from([*ARMS, "ghost"])),
+                              data.draw(st.floats(-100, 100, allow_nan=False)))
+             for _ in range(data.draw(st.integers(0, 4)))]
+    impact = incident_impact(table, None, METRIC, cells)
+    for value in impact.to_dict().values():
+        assert value is None or np.isfinite(value)
+    try:
+        result = honest_effect(table, METRIC, cells)
+    except InputError:
+        return
+    json.dumps(result.to_dict(), allow_nan=False)
