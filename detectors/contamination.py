@@ -8,9 +8,12 @@ estimate and the trimming bounds of :mod:`detectors.honest`.
 :func:`incident_impact` says, per metric, how far one incident can move the effect:
 
 * ``estimated_bias``: the naive difference minus the honest one (the incident's cells left out);
-* ``worst_case``: the largest distance between the estimate on every unit (same cohorts and
-  weights as the bounds) and an end of the trimming bounds (Lee 2009): how far the incident
-  could have moved the effect, assuming only that it added (or removed) units in its arm;
+* ``worst_case``: the largest distance between the naive difference (within allocation
+  periods, combined with the regular population's period weights; the plain naive difference
+  when the allocation never changed) and an end of the trimming bounds around it (Lee 2009,
+  the incident's cells trimmed where the excess sits): how far the incident could have moved
+  the naive reading, assuming only that it added (or removed) units in its arm. It is 0 for
+  an incident without units, whatever the noise;
 * ``standard_error``: of the naive difference; ``in_se = worst_case / standard_error``.
 
 An incident is material when ``in_se >= DEFAULT_MATERIALITY`` (configurable by the caller).
@@ -154,7 +157,7 @@ def incident_impact(table: ObservationTable, schedule: AllocationSchedule | None
         honest_diff: np.ndarray | None = honest[1:] - honest[0]
     except ValueError:
         honest_diff = None
-    parts = bounds_parts(lay, confidence)
+    parts = bounds_parts(lay, confidence, by_source=False)
     affected = {arms.index(c.arm) for c in cells if c.arm in arms}
     candidates = (range(1, len(arms)) if not affected or 0 in affected
                   else sorted(a for a in affected if a > 0))

@@ -228,19 +228,25 @@ def cohort_names(lay: Layout, sources: Sequence[str]) -> tuple[str, ...]:
                  for source in sources)
 
 
-def bounds_parts(lay: Layout, confidence: float = 0.95) -> list[BoundsParts]:
+def bounds_parts(lay: Layout, confidence: float = 0.95, *, by_source: bool = True
+                 ) -> list[BoundsParts]:
     """Trimming bounds of each non-reference arm against the reference arm (see module doc).
 
-    Only the contaminated cells are trimmed; every other cell enters with its plain sums, so
-    the cost grows with the cells an incident touched, not with the whole cube.
+    ``by_source=False`` pools the sources within each period (cells are still trimmed where
+    the excess sits): bounds around the naive difference of each period, which is what an
+    incident's impact is measured against. Only the contaminated cells are trimmed; every other
+    cell enters with its plain sums, so the cost grows with the cells an incident touched, not
+    with the whole cube.
     """
     periods = len(lay.period_starts)
     full = _by_period(lay.cube, lay.period, periods)                    # (P, arms, S, 3)
+    weight_all = regular_weights(lay)                                    # (P, S)
+    pool = (lambda x: x) if by_source else (lambda x: x.sum(axis=-1, keepdims=True))
     arm_stats = full.sum(axis=(0, 2))                                    # (arms, 3)
     fallback = _unit_variance(arm_stats[:, 0], arm_stats[:, 1], arm_stats[:, 2])
-    cohort_var = _unit_variance(full[..., 0], full[..., 1], full[..., 2])
-    cohort_var = np.where(full[..., 0] > 1, cohort_var, fallback[None, :, None])
-    weight_all = regular_weights(lay)                                    # (P, S)
+    pooled = np.stack([pool(full[..., i]) for i in range(3)], axis=-1)  # (P, arms, S', 3)
+    cohort_var = _unit_variance(pooled[..., 0], pooled[..., 1], pooled[..., 2])
+    cohort_var = np.where(pooled[..., 0] > 1, cohort_var, fallback[None, :, None])
     touched_day, touched_source = np.nonzero((lay.excess != 0).any(axis=1))
     cell = (lay.period[touched_day], touched_source)
     sub = lay.cube[touched_day, :, touched_source]                       # (K, arms, 3)
@@ -265,22 +271,22 @@ def bounds_parts(lay: Layout, confidence: float = 0.95) -> list[BoundsParts]:
                 sums.append(total)
             kept_sum = full[:, own, :, 0].copy()
             np.add.at(kept_sum, cell, kept - n[:, own])
-            ends[own] = (sums[0], sums[1], kept_sum)
-        kept_ok = (ends[0][2] > 1e-9) & (ends[a][2] > 1e-9) & (weight_all > 0)
+            ends[own] = (pool(sums[0]), pool(sums[1]), pool(kept_sum))
+        kept_ok = (ends[0][2] > 1e-9) & (ends[a][2] > 1e-9) & (pool(weight_all) > 0)
         if not kept_ok.any():
             nan_bounds = Bounds(None, None, None, None)
             out.append(BoundsParts(nan_bounds, nan_bounds, float("nan")))
             continue
-        pi = np.where(kept_ok, weight_all, 0.0)
+        pi = np.where(kept_ok, pool(weight_all), 0.0)
         pi = pi / pi.sum()
         mean_lo, mean_hi, var_of, untrimmed = {}, {}, {}, {}
         for arm in (0, a):
             low_sum, high_sum, kept_sum = ends[arm]
-            all_n = full[:, arm, :, 0]
+            all_n = pooled[:, arm, :, 0]
             with np.errstate(divide="ignore", invalid="ignore"):
                 lo = np.where(kept_ok, low_sum / kept_sum, 0.0)
                 hi = np.where(kept_ok, high_sum / kept_sum, 0.0)
-                plain = np.where(kept_ok & (all_n > 0), full[:, arm, :, 1] / all_n, 0.0)
+                plain = np.where(kept_ok & (all_n > 0), pooled[:, arm, :, 1] / all_n, 0.0)
                 v = np.where(kept_ok, cohort_var[:, arm] / kept_sum, 0.0)
             mean_lo[arm], mean_hi[arm] = float((pi * lo).sum()), float((pi * hi).sum())
             var_of[arm] = float((pi**2 * v).sum())
@@ -300,8 +306,11 @@ def _relative_bounds(low: dict[int, float], high: dict[int, float], var: dict[in
     if not (r_lo > 0 or r_hi < 0):
         return Bounds(None, None, None, None)        # the reference mean may be 0
     corners = [(x, y) for x in (low[a], high[a]) for y in (r_lo, r_hi)]
-    values = [x / y - 1 for x, y in corners]
-    ses = [float(np.sqrt(var[a] / y**2 + x**2 * var[0] / y**4)) for x, y in corners]
+    with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+        # (1/m_r^2) Var(m_a) + (m_a^2/m_r^4) Var(m_r), arranged so m_r^4 cannot underflow.
+        values = [float(np.float64(x) / y - 1) for x, y in corners]
+        ses = [float(np.sqrt(var[a] + (np.float64(x) / y) ** 2 * var[0]) / abs(y))
+               for x, y in corners]
     lo_i, hi_i = int(np.argmin(values)), int(np.argmax(values))
     return identified_set(values[lo_i], values[hi_i], ses[lo_i], ses[hi_i], confidence)
 

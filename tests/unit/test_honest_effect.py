@@ -45,7 +45,9 @@ from detectors.honest import (
     CAVEAT_RAMP,
     CAVEAT_SHORTFALL,
     attach_bounds,
+    bounds_parts,
     honest_effect,
+    layout,
 )
 from detectors.reweight import reweight
 
@@ -359,14 +361,37 @@ def test_incident_impact_figures() -> None:
     assert impact.standard_error == pytest.approx(se, rel=1e-6)
     assert impact.worst_case is not None and impact.worst_case > 0
     assert impact.in_se == pytest.approx(impact.worst_case / impact.standard_error)
-    # The untrimmed estimate lies inside the bounds; the worst case reaches the far end.
-    assert impact.worst_case <= cards.bounds.high - cards.bounds.low + 1e-12
+    # The naive difference lies inside the bounds around it; the worst case is the far end.
+    (pooled,) = bounds_parts(layout(table, METRIC, cells), by_source=False)
+    assert pooled.difference.low <= cards.naive.difference <= pooled.difference.high
+    assert impact.worst_case == pytest.approx(max(
+        pooled.difference.high - cards.naive.difference,
+        cards.naive.difference - pooled.difference.low), rel=1e-9)
     assert impact.in_se >= DEFAULT_MATERIALITY
     # A tiny incident is immaterial; an empty one moves nothing; unknown metrics give None.
     tiny = [ContaminatedCell(day(1), "organic", "cards", 0.5)]
     assert incident_impact(table, None, METRIC, tiny).in_se < DEFAULT_MATERIALITY
     assert incident_impact(table, None, METRIC, []).worst_case == 0.0
     assert incident_impact(table, None, "nope", cells).in_se is None
+
+
+def test_an_inflow_through_its_own_source_moves_the_naive_reading_by_its_whole_bias() -> None:
+    # The inflow's source exists only in cards: trimming its excess removes those units, so
+    # the bounds around the naive difference shrink to the regular units' naive difference and
+    # the worst case is the inflow's whole bias (pandas on the regular units).
+    units = simulate_units(8, inflow={})
+    rng = np.random.default_rng(8)
+    extra = pd.DataFrame({"day": 1, "arm": "cards", "source": "winback", "regular": False,
+                          "value": rng.gamma(2.0, 0.3, 400)})
+    units = pd.concat([units, extra], ignore_index=True)
+    table = table_of(units)
+    impact = incident_impact(table, None, METRIC, cells_of(units))
+    means = units.groupby("arm")["value"].mean()
+    regular = units[units["regular"]].groupby("arm")["value"].mean()
+    bias = (means["cards"] - means["control"]) - (regular["cards"] - regular["control"])
+    assert impact.worst_case == pytest.approx(abs(bias), rel=1e-9)
+    assert impact.in_se >= DEFAULT_MATERIALITY
+    assert impact.estimated_bias == pytest.approx(bias, abs=0.2 * abs(bias))
 
 
 def test_incident_in_the_reference_arm_takes_the_worst_comparison() -> None:
@@ -391,10 +416,10 @@ def test_incident_in_the_reference_arm_takes_the_worst_comparison() -> None:
         for other in ("cards", "map")]
     assert per_arm[0].in_se != pytest.approx(per_arm[1].in_se)
     assert impact.in_se == pytest.approx(max(i.in_se for i in per_arm))
-    result = honest_effect(table, METRIC, cells)
-    assert len(result.comparisons) == 2
-    worst = max(c.bounds.high - c.bounds.low for c in result.comparisons)
-    assert impact.worst_case is not None and impact.worst_case <= worst + 1e-12
+    pooled = bounds_parts(layout(table, METRIC, cells), by_source=False)
+    assert len(pooled) == 2
+    worst = max(p.difference.high - p.difference.low for p in pooled)
+    assert impact.worst_case is not None and 0 < impact.worst_case <= worst + 1e-12
 
 
 @settings(max_examples=60, deadline=None)
