@@ -43,6 +43,7 @@ import numpy as np
 
 from detectors import diagnose
 from detectors.contamination import (
+    DEFAULT_MATERIALITY,
     ContaminatedCell,
     cells_from_document,
     incident_impact,
@@ -111,6 +112,8 @@ def one_rep(task: tuple[str, int]) -> dict[str, Any]:
                                           comparison.adjusted.difference)
     except InputError as error:   # undefined: a cohort without units in some arm
         out["previous_default"] = {"covers": False, "error": str(error)[:120]}
+    impact = incident_impact(sim.table, sim.schedule, METRIC, truth_cells(sim))
+    out["impact_in_se"] = impact.in_se
     document = diagnose(sim.table, sim.schedule).to_dict()
     for source, cells in (("truth", truth_cells(sim)), ("detector", cells_from_document(document))):
         try:
@@ -155,6 +158,11 @@ def summarise(reps: list[dict[str, Any]]) -> dict[str, Any]:
                       if r[key].get("point") is not None]
             if points:
                 row[key]["mean_bias"] = float(np.mean(points))
+        in_se = [r["impact_in_se"] for r in mine if r.get("impact_in_se") is not None]
+        row["impact"] = {"median_in_se": float(np.median(in_se)) if in_se else None,
+                         "material_share": (float(np.mean([v >= DEFAULT_MATERIALITY
+                                                           for v in in_se])) if in_se
+                                            else None)}
         for source in ("truth", "detector"):
             widths = [r[f"{source}.bounds"].get("width_over_se") for r in mine]
             widths = [w for w in widths if w is not None]
@@ -271,6 +279,17 @@ def write(summary: dict[str, Any]) -> None:
         lines.append(f"| {placement} | {_cell(row['detector.honest'])} | "
                      f"{_cell(row['detector.bounds'])} | "
                      f"{'-' if width is None else f'{width:.2f}'} |")
+    lines += ["", "Impact of the incident (truth cells, `incident_impact`): median worst case in "
+              "standard errors of the naive difference, and the share of runs it is material "
+              f"(>= {DEFAULT_MATERIALITY} SE):", "", "| placement | median in_se | material |",
+              "|---|---|---|"]
+    for placement, row in summary["placements"].items():
+        impact = row["impact"]
+        if impact["median_in_se"] is None:
+            lines.append(f"| {placement} | not run | not run |")
+        else:
+            lines.append(f"| {placement} | {impact['median_in_se']:.2f} | "
+                         f"{100 * impact['material_share']:.1f}% |")
     lines += ["", *goal_lines(summary)]
     impact = summary["impact_ms"]
     lines += ["", "`incident_impact` (median of 30 calls, one incident, one metric): "
