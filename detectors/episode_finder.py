@@ -336,6 +336,9 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
     persistent = run.whole_period or (
         first <= first_active and (last - first + 1) >= PERSISTENT_COVER * (n_days - first_active))
     if persistent:
+        # Steady from the first day: the episode is the whole period so far.
+        first, last = first_active, n_days - 1
+        start, end = dates[first].item(), dates[last].item()
         span = np.arange(first, last + 1)
         relative = ((counts[span] - expected[span]).sum(axis=0)
                     / np.maximum(expected[span].sum(axis=0), 1e-12))

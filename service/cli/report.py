@@ -38,11 +38,10 @@ def format_diagnosis(doc: dict[str, Any], result: Any = None) -> str:
     if not flagged:
         out("  none\n")
     for day in flagged:
-        arm = day["inflow_arm"]
         sources = ", ".join(f"{s['source']} {100 * s['share_of_excess']:.0f}%"
                             for s in day["sources"][:3]) or "no source adds units"
-        out(f"  {day['date']}  {day['severity']:<5}  {arm} {day['excess'][arm]:+,.0f} units  "
-            f"p(adj) = {_p(day['p_value'])}  excess from: {sources}\n")
+        out(f"  {day['date']}  {day['severity']:<5}  {day['shape']} {day['arm']} "
+            f"{day['units']:+,.0f} units  p = {_p(day['p_value'])}  from: {sources}\n")
         for campaign in day.get("campaigns", []):
             out(f"      campaign running: {campaign}\n")
 
