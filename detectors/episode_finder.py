@@ -419,10 +419,10 @@ def _context(engagement: Mapping[str, Mapping[str, Sequence[EngagementChangepoin
             for change in changes:
                 if start - slack <= change.date <= end + slack:
                     notes.append(
-                        f"{metric} of {arm}'s entrants moved against the other arms on "
-                        f"{change.date.isoformat()} ({change.before:,.3g} to {change.after:,.3g}"
-                        "), during this episode: the units that entered then may differ from "
-                        "the usual entrants.")
+                        f"{metric} of the units entering {arm} moved against the other arms on "
+                        f"{change.date.isoformat()} (gap {change.before:+,.3g} to "
+                        f"{change.after:+,.3g}), coinciding with this episode: the units that "
+                        "entered during it may differ from the usual entrants.")
     return tuple(notes)
 
 
@@ -433,7 +433,8 @@ def _weights(weights: Mapping[str, float] | None, arms: Sequence[str]) -> str:
 
 
 def _span(start: dt.date, end: dt.date) -> str:
-    return start.isoformat() if start == end else f"{start.isoformat()} to {end.isoformat()}"
+    return (f"on {start.isoformat()}" if start == end
+            else f"from {start.isoformat()} to {end.isoformat()}")
 
 
 def _summary(shape: str, arm: str, start: dt.date, end: dt.date, units: float,
@@ -445,10 +446,10 @@ def _summary(shape: str, arm: str, start: dt.date, end: dt.date, units: float,
     explained = (f"; explained by the registered campaign {' and '.join(campaigns)}"
                  if campaigns else "")
     if shape == INFLOW:
-        return (f"Inflow into {arm} on {_span(start, end)}: about {units:+,.0f} units over plan"
+        return (f"Inflow into {arm} {_span(start, end)}: about {units:+,.0f} units over plan"
                 f"{via}{explained}.")
     if shape == SHORTFALL:
-        return (f"Shortfall in {arm} on {_span(start, end)}: about {abs(units):,.0f} units "
+        return (f"Shortfall in {arm} {_span(start, end)}: about {abs(units):,.0f} units "
                 f"missing against plan{via}{explained}.")
     if shape == ALLOCATION_STEP:
         return (f"From {start.isoformat()}"

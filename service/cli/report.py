@@ -5,6 +5,8 @@ from __future__ import annotations
 import textwrap
 from typing import Any
 
+from .incident_text import format_incidents
+
 _WIDTH = 92
 
 
@@ -23,6 +25,8 @@ def format_diagnosis(doc: dict[str, Any], result: Any = None) -> str:
     out = lines.append
     out(f"Inrush diagnosis of {doc['experiment'] or 'experiment'} as of {doc['as_of']}: "
         f"{doc['status'].upper()}\n")
+    incidents, printed = format_incidents(doc)
+    out(incidents)
     srm = doc["srm"]
     out("\nSample ratio, whole period\n")
     for arm, observed in srm["observed"].items():
@@ -73,8 +77,10 @@ def format_diagnosis(doc: dict[str, Any], result: Any = None) -> str:
         out("\nSensitivity\n")
         out(f"  {sensitivity['summary']}\n")
 
-    out("\nAdvice\n")
-    for item in doc["advice"]:
+    remaining = [item for item in doc["advice"] if item not in printed]
+    if remaining:
+        out("\nAdvice\n")
+    for item in remaining:
         out(_wrap(item))
     return "".join(lines)
 
