@@ -305,8 +305,9 @@ def _match(episodes: Sequence[Episode], incidents: Sequence[Incident], *,
 
 def _summary(incident: Incident) -> dict[str, Any]:
     days = [d.get("date") for d in (incident.episode or {}).get("daily", [])]
-    return {"start": incident.start_date.isoformat(), "end": incident.end_date.isoformat(),
-            "days": days, "arm": incident.arm, "shape": incident.shape,
+    start, end = incident.start_date, incident.end_date  # None on a new incident
+    return {"start": start.isoformat() if start else None,
+            "end": end.isoformat() if end else None, "days": days, "arm": incident.arm, "shape": incident.shape,
             "severity": incident.severity, "units": incident.units}
 
 
