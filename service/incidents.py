@@ -307,8 +307,8 @@ def _summary(incident: Incident) -> dict[str, Any]:
     days = [d.get("date") for d in (incident.episode or {}).get("daily", [])]
     start, end = incident.start_date, incident.end_date  # None on a new incident
     return {"start": start.isoformat() if start else None,
-            "end": end.isoformat() if end else None, "days": days, "arm": incident.arm, "shape": incident.shape,
-            "severity": incident.severity, "units": incident.units}
+            "end": end.isoformat() if end else None, "days": days, "arm": incident.arm,
+            "shape": incident.shape, "severity": incident.severity, "units": incident.units}
 
 
 def _apply(incident: Incident, episode: Episode, position: int, version: int | None,
