@@ -247,7 +247,8 @@ def _group(alerts: list[dict[str, Any]], start: dt.date, as_of: dt.date | None
 def _persistent(members: list[dict[str, Any]], start: dt.date, as_of: dt.date | None
                 ) -> dict[str, Any]:
     """One ``persistent`` incident from whole-period findings: the arm furthest over or under
-    its planned count (SRM detail first, else the sum over skewed sources)."""
+    its planned count, over plan on a tie (SRM detail first, else the sum over skewed
+    sources); its units are moved into that arm from the others."""
     gap: dict[str, float] = {}
     srm = next((m for m in members if m["kind"] == "srm"), None)
     sources = [m for m in members if m["kind"] == "skewed_source"]
@@ -256,7 +257,8 @@ def _persistent(members: list[dict[str, Any]], start: dt.date, as_of: dt.date | 
         for arm, count in (detail.get("observed") or {}).items():
             gap[arm] = gap.get(arm, 0.0) + float(count) - float(
                 (detail.get("expected") or {}).get(arm, count))
-    arm = max(gap, key=lambda a: abs(gap[a])) if gap else ""
+    # Two arms are off by the same amount in opposite directions: name the one over plan.
+    arm = max(gap, key=lambda a: (abs(round(gap[a], 6)), gap[a])) if gap else ""
     dates = [d for d in (_date((m["detail"] or {}).get("date")) for m in members) if d]
     end = as_of or max(dates, default=start)
     return {"shape": "persistent", "start": start, "end": max(end, start), "members": members,
@@ -273,8 +275,10 @@ def _store(bind: sa.Connection, experiment_id: str, group: dict[str, Any],
               else "resolved")
     opened_at = min(m["opened_at"] for m in members)
     last_seen = max(m["last_seen_at"] for m in members)
-    acknowledged = max((m for m in members if m["acknowledged_at"] is not None),
-                       key=lambda m: m["acknowledged_at"], default=None)
+    # An incident is only as far along as its least advanced finding.
+    acknowledged = None if status == "open" else max(
+        (m for m in members if m["acknowledged_at"] is not None),
+        key=lambda m: m["acknowledged_at"], default=None)
     resolved = max((m for m in members if m["resolved_at"] is not None),
                    key=lambda m: m["resolved_at"], default=None)
     total = sum(u for u in group["by_source"].values() if u > 0)
