@@ -5,6 +5,8 @@ from __future__ import annotations
 import textwrap
 from typing import Any
 
+from .incident_text import format_incidents
+
 _WIDTH = 92
 
 
@@ -23,6 +25,8 @@ def format_diagnosis(doc: dict[str, Any], result: Any = None) -> str:
     out = lines.append
     out(f"Inrush diagnosis of {doc['experiment'] or 'experiment'} as of {doc['as_of']}: "
         f"{doc['status'].upper()}\n")
+    incidents, printed = format_incidents(doc)
+    out(incidents)
     srm = doc["srm"]
     out("\nSample ratio, whole period\n")
     for arm, observed in srm["observed"].items():
@@ -38,11 +42,10 @@ def format_diagnosis(doc: dict[str, Any], result: Any = None) -> str:
     if not flagged:
         out("  none\n")
     for day in flagged:
-        arm = day["inflow_arm"]
         sources = ", ".join(f"{s['source']} {100 * s['share_of_excess']:.0f}%"
                             for s in day["sources"][:3]) or "no source adds units"
-        out(f"  {day['date']}  {day['severity']:<5}  {arm} {day['excess'][arm]:+,.0f} units  "
-            f"p(adj) = {_p(day['p_value'])}  excess from: {sources}\n")
+        out(f"  {day['date']}  {day['severity']:<5}  {day['shape']} {day['arm']} "
+            f"{day['units']:+,.0f} units  p = {_p(day['p_value'])}  from: {sources}\n")
         for campaign in day.get("campaigns", []):
             out(f"      campaign running: {campaign}\n")
 
@@ -74,8 +77,10 @@ def format_diagnosis(doc: dict[str, Any], result: Any = None) -> str:
         out("\nSensitivity\n")
         out(f"  {sensitivity['summary']}\n")
 
-    out("\nAdvice\n")
-    for item in doc["advice"]:
+    remaining = [item for item in doc["advice"] if item not in printed]
+    if remaining:
+        out("\nAdvice\n")
+    for item in remaining:
         out(_wrap(item))
     return "".join(lines)
 
