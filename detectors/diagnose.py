@@ -383,6 +383,8 @@ def _advice(status: str, srm: SrmSummary, flagged: Sequence[FlaggedDay],
             config: DiagnosisConfig) -> tuple[str, ...]:
     advice: list[str] = []
     alert_days = [d for d in flagged if d.severity == "alert"]
+    design_advice: list[str] = []
+    all_campaigns: set[str] = set()
     if alert_days:
         by_arm: dict[str, list[FlaggedDay]] = {}
         for day in alert_days:
@@ -396,22 +398,26 @@ def _advice(status: str, srm: SrmSummary, flagged: Sequence[FlaggedDay],
             named = _main_sources(weight)
             dates = ", ".join(d.date.isoformat() for d in days)
             advice.append(
-                f"About {inflow:.0f} units entered {arm} beyond its planned share on {dates}, "
+                f"About {inflow:,.0f} units entered {arm} beyond its planned share on {dates}, "
                 f"mostly through {' and '.join(named) or 'an unlabelled source'}. Until this is "
                 "explained, the experiment's effect estimate is not trustworthy.")
             campaigns = sorted({c for d in days for c in d.campaigns})
+            all_campaigns.update(campaigns)
             if campaigns or any(s not in ORGANIC_SOURCES for s in named):
-                advice.append(
+                design_advice.append(
                     "If an email, push or SMS campaign reached only some arms' users, fix the "
                     "design: send it to an equal share of every arm, or log who would have "
-                    "received it in every arm and analyse by intent to treat."
-                    + (f" Registered campaigns on these days: {', '.join(campaigns)}."
-                       if campaigns else ""))
+                    "received it in every arm and analyse by intent to treat.")
             else:
-                advice.append(
+                design_advice.append(
                     "The excess arrived through organic or unlabelled traffic: look for a "
                     "partner link, a ramp step or an assignment change on those days, and label "
                     "entry sources so the next inflow can be traced.")
+        # Each piece of design advice once, however many arms it concerns.
+        advice.extend(dict.fromkeys(design_advice))
+        if all_campaigns:
+            advice.append("Registered campaigns on these days: "
+                          f"{', '.join(sorted(all_campaigns))}.")
         advice.append(
             "Re-estimate the effect by entry cohort (reweight, by source or by source and "
             "window) to see how much the inflow moved it. A re-weighted estimate answers a "
@@ -426,15 +432,19 @@ def _advice(status: str, srm: SrmSummary, flagged: Sequence[FlaggedDay],
             "bot filtering in one arm, a redirect) and do not read the effect until it is found.")
     skewed = [s.source for s in sources if s.skewed]
     if skewed:
-        advice.append(f"Entry sources {', '.join(skewed)} do not follow the allocation: check how "
-                      "their units are assigned and whether their traffic targets one arm.")
+        advice.append(
+            f"Entry source {skewed[0]} does not follow the allocation: check how its units "
+            "are assigned and whether its traffic targets one arm." if len(skewed) == 1 else
+            f"Entry sources {', '.join(skewed)} do not follow the allocation: check how their "
+            "units are assigned and whether their traffic targets one arm.")
     if share_changes:
         advice.append("Arm shares shifted on "
                       + ", ".join(c.date.isoformat() for c in share_changes)
                       + ": compare with ramp steps, releases and campaign dates.")
     if engagement:
         advice.append("Entrant engagement changed against the other arms on some days "
-                      "(see changepoints.engagement): a different population may have entered.")
+                      "(see the engagement changepoints): a different population may have "
+                      "entered.")
     if schedule.change_dates():
         advice.append("The allocation changed on "
                       + ", ".join(d.isoformat() for d in schedule.change_dates())
