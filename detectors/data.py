@@ -267,10 +267,19 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
         stats = np.column_stack([_numeric(frame[f"{name}.{s}"]) for s in STAT_FIELDS])
         absent = np.isnan(stats).all(axis=1) & frame[[f"{name}.{s}" for s in STAT_FIELDS]] \
             .isna().all(axis=1).to_numpy()
+        unreadable = np.zeros(len(frame), dtype=bool)
+        for stat, column in zip(STAT_FIELDS, stats.T, strict=True):
+            cells = frame[f"{name}.{stat}"]
+            text = np.flatnonzero(np.isnan(column) & ~cells.isna().to_numpy())
+            mask = np.zeros(len(frame), dtype=bool)  # text, not a number ("nan" is empty)
+            mask[text] = [_cell_text(v, None) != "" for v in cells.iloc[text]]
+            flag_values(mask, f"{name}.{stat}", _number_message)
+            unreadable |= mask
+        partial = ~absent & ~np.isfinite(stats).all(axis=1) & ~unreadable
+        flag(partial, name, _partial_message(name, stats, partial))
         stats[absent] = 0.0
         n, total, total_sq = stats.T
-        partial = ~absent & ~np.isfinite(stats).all(axis=1)
-        flag(partial, name, _partial_message(frame, name, partial))
+        partial |= unreadable
         ok = ~partial
         flag_values(ok & ((n < 0) | (n != np.floor(n))), f"{name}.n",
                     lambda text: _count_message(text, "n"), n)
@@ -361,11 +370,15 @@ def _arm_message(text: str, arms: Sequence[str]) -> str:
     return f"{text!r} is not one of the arms {listed}{hint}"
 
 
-def _partial_message(frame: pd.DataFrame, name: str, partial: np.ndarray) -> str:
-    columns = [f"{name}.{s}" for s in STAT_FIELDS]
-    empty = [c for c in columns if frame[c][partial].isna().any()]
+def _partial_message(name: str, stats: np.ndarray, partial: np.ndarray) -> str:
+    empty = [f"{name}.{stat}" for stat, column in zip(STAT_FIELDS, stats.T, strict=True)
+             if np.isnan(column[partial]).any()]
     return ("needs finite n, sum and sum_sq together"
             + (f" ({', '.join(empty)} empty on some rows)" if empty else ""))
+
+
+def _number_message(text: str) -> str:
+    return f"{text!r} is not a number{_number_hint(text)}"
 
 
 def _numeric(series: pd.Series) -> np.ndarray:

@@ -122,7 +122,9 @@ def load(args: argparse.Namespace) -> Loaded:
         table = ObservationTable.from_frame(frame, options.arms, start=options.start)
     except InputError as error:
         items = error_items(error.problems, rows.lines[positions])
-        raise BadInputError(_absent_arms(frame, options.arms) + items) from None
+        arm_problems = any(item["field"] == "arm" for item in items)
+        raise BadInputError((_absent_arms(frame, options.arms) if arm_problems else [])
+                            + items) from None
     if "source" not in rows.frame.columns:
         notes.append(f"the file has no source column: every row counts as {UNATTRIBUTED!r}, "
                      "so the entry sources behind an imbalance cannot be told apart.")

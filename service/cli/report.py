@@ -206,14 +206,15 @@ def format_diagnosis(doc: dict[str, Any], result: Any = None) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _estimate(est: dict[str, Any]) -> str:
+def _estimate(est: dict[str, Any]) -> tuple[str, str]:
+    """The difference with its interval, and the relative lift with its interval."""
     rel = est.get("relative")
-    rel_text = ("" if rel is None else
-                f"; relative {100 * rel:+.2f}% [{100 * est['relative_ci_low']:+.2f}%, "
+    relative = ("relative n/a" if rel is None else
+                f"relative {100 * rel:+.2f}% [{100 * est['relative_ci_low']:+.2f}%, "
                 f"{100 * est['relative_ci_high']:+.2f}%]")
     return (f"{est['arm_mean']:,.4f} vs {est['reference_mean']:,.4f}: difference "
-            f"{est['difference']:+,.4f} [{est['ci_low']:+,.4f}, {est['ci_high']:+,.4f}]"
-            f"{rel_text}")
+            f"{est['difference']:+,.4f} [{est['ci_low']:+,.4f}, {est['ci_high']:+,.4f}]",
+            relative)
 
 
 def format_reweighting(doc: dict[str, Any]) -> str:
@@ -225,8 +226,10 @@ def format_reweighting(doc: dict[str, Any]) -> str:
                        f"{' and '.join(doc['by'])}; 95% intervals)", indent="")
     for comparison in doc["comparisons"]:
         out(f"\n  {comparison['arm']}")
-        lines += paragraph(f"naive     {_estimate(comparison['naive'])}", indent="    ")
-        lines += paragraph(f"adjusted  {_estimate(comparison['adjusted'])}", indent="    ")
+        for label in ("naive", "adjusted"):
+            difference, relative = _estimate(comparison[label])
+            lines += paragraph(f"{label:<9} {difference}", indent="    ")
+            lines += paragraph(relative, indent=" " * 14)
         parts = comparison["decomposition"]
         lines += paragraph(f"naive gap = composition {parts['composition']:+,.4f} + within "
                            f"cohorts {parts['within']:+,.4f}", indent="    ")
