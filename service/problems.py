@@ -31,8 +31,8 @@ PROBLEM_TYPES: dict[str, tuple[str, str]] = {
     "invalid-input": (
         "Invalid input",
         "The request is well-formed but some values cannot be accepted. `errors` lists each "
-        "offending row (0-based position in the request), field and reason; nothing was "
-        "written."),
+        "offending row (0-based position in the request; for CSV also the file `line` it "
+        "starts on, the header being line 1), field and reason; nothing was written."),
     "malformed-body": (
         "Malformed request body",
         "The body could not be parsed (invalid JSON or CSV syntax). Nothing was written."),
