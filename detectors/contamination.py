@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import datetime as dt
 import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -37,13 +37,15 @@ import numpy as np
 
 from .allocation import AllocationSchedule
 from .data import ObservationTable
-from .episodes import Episode, MetricImpact
+from .episodes import Episode, EpisodeCell, MetricImpact
 from .errors import InputError
 from .honest import bounds_parts, honest_arrays, layout, naive_estimates
 
 # An incident whose worst case is below this many standard errors of the naive difference is
 # immaterial (common practice, no source: a quarter SE barely moves a 95% interval).
 DEFAULT_MATERIALITY = 0.25
+# Episode shapes whose cells all go one way (units added, or units missing).
+ONE_WAY = ("inflow", "shortfall")
 
 
 @dataclass(frozen=True, slots=True)
@@ -71,10 +73,10 @@ def cells_from_document(document: Mapping[str, Any]) -> tuple[ContaminatedCell, 
     if incidents is not None:
         for incident in incidents or ():
             arm = incident.get("arm")
-            for cell in incident.get("cells") or ():
-                made = _cell(cell.get("date"), cell.get("source"), arm, cell.get("units"))
-                if made is not None:
-                    out.append(made)
+            made = [_cell(cell.get("date"), cell.get("source"), arm, cell.get("units"))
+                    for cell in incident.get("cells") or ()]
+            cells = [c for c in made if c is not None]
+            out += _one_direction(cells) if incident.get("shape") in ONE_WAY else cells
         return tuple(out)
     for day in document.get("flagged_days") or ():
         if day.get("severity") != "alert":
@@ -98,8 +100,19 @@ def cells_from_document(document: Mapping[str, Any]) -> tuple[ContaminatedCell, 
 
 def cells_from_episodes(episodes: Iterable[Episode]) -> tuple[ContaminatedCell, ...]:
     """The contaminated cells of detector episodes (each cell in its episode's arm)."""
-    return tuple(ContaminatedCell(c.date, c.source, e.arm, float(c.units))
-                 for e in episodes for c in e.cells if c.units != 0)
+    out: list[ContaminatedCell] = []
+    for episode in episodes:
+        cells = [ContaminatedCell(c.date, c.source, episode.arm, float(c.units))
+                 for c in episode.cells if c.units != 0]
+        out += _one_direction(cells) if episode.shape in ONE_WAY else cells
+    return tuple(out)
+
+
+def _one_direction(cells: Sequence[ContaminatedCell]) -> list[ContaminatedCell]:
+    """The cells that go the episode's way: an inflow's sources that fell short of plan on its
+    days (or a shortfall's that exceeded it) are noise, not a second incident."""
+    total = sum(c.units for c in cells)
+    return [c for c in cells if c.units * total > 0]
 
 
 def _positive(value: Any) -> bool:
@@ -176,6 +189,30 @@ def incident_impact(table: ObservationTable, schedule: AllocationSchedule | None
         if best is None or (in_se or 0.0) > (best.in_se or 0.0):
             best = impact
     return best or empty
+
+
+def impact_function(table: ObservationTable, schedule: AllocationSchedule | None
+                    ) -> Callable[[Sequence[EpisodeCell], str], dict[str, MetricImpact]]:
+    """For :func:`detectors.diagnose.diagnose`'s ``impact``: the function giving an episode's
+    :func:`incident_impact` on every metric of ``table`` from its cells and arm.
+
+    Example:
+        >>> import pandas as pd
+        >>> rows = pd.DataFrame({"date": ["2026-03-01"] * 2, "arm": ["control", "cards"],
+        ...     "source": ["organic"] * 2, "entered": [100, 100], "m.n": [100, 100],
+        ...     "m.sum": [200.0, 210.0], "m.sum_sq": [500.0, 530.0]})
+        >>> table = ObservationTable.from_frame(rows, ["control", "cards"])
+        >>> impacts = impact_function(table, None)((), "cards")
+        >>> impacts["m"].worst_case
+        0.0
+    """
+    def impacts(cells: Sequence[EpisodeCell], arm: str) -> dict[str, MetricImpact]:
+        contaminated = _one_direction([ContaminatedCell(c.date, c.source, arm, float(c.units))
+                                       for c in cells if c.units != 0])
+        return {metric: incident_impact(table, schedule, metric, contaminated)
+                for metric in table.metrics}
+
+    return impacts
 
 
 def _finite(value: float) -> float | None:

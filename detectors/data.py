@@ -8,8 +8,9 @@ once from the rows of the data contract. Building it validates every row and rai
 from __future__ import annotations
 
 import datetime as dt
+import difflib
 import re
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -216,11 +217,26 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
         for row in np.flatnonzero(mask):
             problems.append(Problem(column, message, int(row)))
 
+    def flag_values(mask: np.ndarray, column: str, describe: Callable[[str], str],
+                    numbers: np.ndarray | None = None) -> None:
+        """One message per distinct offending cell, quoting it (``describe(cell text)``);
+        a cell that reads as a number (``numbers``) is quoted as that number, so that the
+        fast reader's numbers and the strict reader's text give the same message."""
+        rows = np.flatnonzero(mask)
+        if not rows.size:
+            return
+        cells = pd.Series([_cell_text(value, None if numbers is None else numbers[row])
+                           for row, value in zip(rows, frame[column].iloc[rows], strict=True)],
+                          dtype=object)
+        messages = {text: describe(text) for text in cells.unique()}
+        problems.extend(Problem(column, messages[text], int(row))
+                        for row, text in zip(rows, cells, strict=True))
+
     raw_dates = frame["date"]
     as_text = raw_dates.astype("string").str.strip()
     well_written = as_text.str.fullmatch(r"\d{4}-\d{2}-\d{2}").fillna(False).astype(bool)
     dates = pd.to_datetime(as_text.where(well_written), format="%Y-%m-%d", errors="coerce")
-    flag(dates.isna().to_numpy(), "date", "must be a calendar date written YYYY-MM-DD")
+    flag_values(dates.isna().to_numpy(), "date", _date_message)
     day = dates.to_numpy().astype("datetime64[D]")
     if start is not None:
         flag(~np.isnat(day) & (day < np.datetime64(start, "D")), "date",
@@ -230,8 +246,8 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
              f"is after the last accepted date {end.isoformat()}")
 
     arm = frame["arm"].astype("string")
-    flag((~arm.isin(list(arms)) | arm.isna()).to_numpy(), "arm",
-         f"is not one of the experiment's arms {list(arms)}")
+    flag_values((~arm.isin(list(arms)) | arm.isna()).to_numpy(), "arm",
+                lambda text: _arm_message(text, arms))
 
     if "source" in frame.columns:
         source = frame["source"].astype("string").str.strip().fillna("")
@@ -242,7 +258,7 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
 
     entered = _numeric(frame["entered"])
     bad_entered = ~np.isfinite(entered) | (entered < 0) | (entered != np.floor(entered))
-    flag(bad_entered, "entered", "must be a whole number >= 0")
+    flag_values(bad_entered, "entered", lambda text: _count_message(text, "entered"), entered)
     flag(np.isfinite(entered) & (entered > 2**53), "entered", "is implausibly large")
 
     clean = pd.DataFrame({"date": day, "arm": arm, "source": source,
@@ -251,12 +267,22 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
         stats = np.column_stack([_numeric(frame[f"{name}.{s}"]) for s in STAT_FIELDS])
         absent = np.isnan(stats).all(axis=1) & frame[[f"{name}.{s}" for s in STAT_FIELDS]] \
             .isna().all(axis=1).to_numpy()
+        unreadable = np.zeros(len(frame), dtype=bool)
+        for stat, column in zip(STAT_FIELDS, stats.T, strict=True):
+            cells = frame[f"{name}.{stat}"]
+            text = np.flatnonzero(np.isnan(column) & ~cells.isna().to_numpy())
+            mask = np.zeros(len(frame), dtype=bool)  # text, not a number ("nan" is empty)
+            mask[text] = [_cell_text(v, None) != "" for v in cells.iloc[text]]
+            flag_values(mask, f"{name}.{stat}", _number_message)
+            unreadable |= mask
+        partial = ~absent & ~np.isfinite(stats).all(axis=1) & ~unreadable
+        flag(partial, name, _partial_message(name, stats, partial))
         stats[absent] = 0.0
         n, total, total_sq = stats.T
-        partial = ~absent & ~np.isfinite(stats).all(axis=1)
-        flag(partial, name, "needs finite n, sum and sum_sq together")
+        partial |= unreadable
         ok = ~partial
-        flag(ok & ((n < 0) | (n != np.floor(n))), f"{name}.n", "must be a whole number >= 0")
+        flag_values(ok & ((n < 0) | (n != np.floor(n))), f"{name}.n",
+                    lambda text: _count_message(text, "n"), n)
         flag(ok & ~bad_entered & (n > entered), f"{name}.n",
              "is larger than entered: a cohort cannot have more measured units than units")
         flag(ok & (n == 0) & ((total != 0) | (total_sq != 0)), name,
@@ -282,6 +308,77 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
     clean["arm"] = clean["arm"].astype(str)
     clean["source"] = clean["source"].astype(str)
     return clean, names
+
+
+_THOUSANDS = re.compile(r"[+-]?\d{1,3}([,.' \u00a0\u202f]\d{3})+")
+_DECIMAL_COMMA = re.compile(r"[+-]?\d+,\d+")
+
+
+def _cell_text(value: object, number: float | None) -> str:
+    """A cell as written, or as the number it reads as (shortest form); empty and NaN cells
+    are ``""`` (the fast reader cannot tell them apart)."""
+    if number is not None and not np.isnan(number):
+        if np.isfinite(number) and float(number).is_integer() and abs(number) < 2**53:
+            return str(int(number))
+        return repr(float(number))
+    if value is None or value is pd.NA or isinstance(value, float | np.floating):
+        return ""
+    text = str(value)
+    return "" if text.strip().lower() in ("nan", "+nan", "-nan") else text
+
+
+def _number_hint(text: str) -> str:
+    """Why a cell is not a number, when it looks like one written for a spreadsheet."""
+    stripped = text.strip()
+    if _THOUSANDS.fullmatch(stripped):
+        return f": drop the thousands separator ({re.sub(r'[^0-9+-]', '', stripped)})"
+    if _DECIMAL_COMMA.fullmatch(stripped):
+        return f": use a decimal point ({stripped.replace(',', '.')})"
+    return ""
+
+
+def _count_message(text: str, what: str) -> str:
+    if not text:
+        return f"{what} is empty: a whole number >= 0 is needed"
+    return f"{text!r} is not a whole number >= 0{_number_hint(text)}"
+
+
+def _date_message(text: str) -> str:
+    if not text:
+        return "the date is empty: write it YYYY-MM-DD"
+    hint = ""
+    for layout in ("%d/%m/%Y", "%m/%d/%Y", "%d.%m.%Y", "%Y/%m/%d", "%Y%m%d"):
+        try:
+            parsed = dt.datetime.strptime(text.strip(), layout).date()
+        except ValueError:
+            continue
+        hint = f" (for {parsed.isoformat()}, write it so)"
+        break
+    return f"{text!r} is not a date written YYYY-MM-DD{hint}"
+
+
+def _arm_message(text: str, arms: Sequence[str]) -> str:
+    listed = ", ".join(arms)
+    if not text:
+        return f"the arm is empty: it must be one of {listed}"
+    folded = {arm.casefold().replace("-", "_"): arm for arm in arms}
+    close = folded.get(text.strip().casefold().replace("-", "_"))
+    if close is None:
+        matches = difflib.get_close_matches(text, list(arms), n=1, cutoff=0.6)
+        close = matches[0] if matches else None
+    hint = f": did you mean {close!r}?" if close is not None else ""
+    return f"{text!r} is not one of the arms {listed}{hint}"
+
+
+def _partial_message(name: str, stats: np.ndarray, partial: np.ndarray) -> str:
+    empty = [f"{name}.{stat}" for stat, column in zip(STAT_FIELDS, stats.T, strict=True)
+             if np.isnan(column[partial]).any()]
+    return ("needs finite n, sum and sum_sq together"
+            + (f" ({', '.join(empty)} empty on some rows)" if empty else ""))
+
+
+def _number_message(text: str) -> str:
+    return f"{text!r} is not a number{_number_hint(text)}"
 
 
 def _numeric(series: pd.Series) -> np.ndarray:

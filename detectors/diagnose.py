@@ -1,22 +1,33 @@
 """One call that runs every detector and assembles the diagnosis document.
 
-``diagnose`` combines the whole-period SRM test (Pearson chi-square), the anytime-valid
-Dirichlet-multinomial test (Lindon & Malek 2022), a Holm-controlled scan over windows of days,
-per-source fits and the source x arm independence test, PELT changepoints on arm shares and on
-entrant engagement, and turns them into a status, flagged days with the sources behind their
-excess, and advice for the experiment owner.
+``diagnose`` runs the deciding tests, each valid when the diagnosis is read again after every
+upload, and groups what they find into episodes (:mod:`detectors.episode_finder`):
+
+- the window scan over 1..``max_window`` days, its level spent over the experiment's life
+  (:func:`detectors.srm.scan_windows`);
+- the mixture e-detector of a change in arm shares, for episodes of any length
+  (:mod:`detectors.change_detection`);
+- the anytime-valid Dirichlet-multinomial test over the whole period (Lindon & Malek 2022);
+- per-source anytime-valid tests, Bonferroni-Holm across sources.
+
+Each family alerts below its own lifetime level and is shown as ``watch`` below
+``watch_alpha``; by the union bound, an A/A experiment ever raises an alert with probability
+at most ``scan_alpha + change_alpha + 2 alpha`` and is ever shown as ``watch`` with probability
+at most ``4 watch_alpha`` (0.5% and 4% with the defaults; measured in benchmarks/RESULTS.md).
+Changepoints (PELT) localise and describe; outcome-metric changepoints are context only.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Any, Protocol
+from typing import Any
 
 import numpy as np
 
 from .allocation import AllocationSchedule
+from .change_detection import ChangeDetection, detect_share_change
 from .changepoints import (
     ChangepointConfig,
     EngagementChangepoint,
@@ -24,10 +35,18 @@ from .changepoints import (
     engagement_changepoints,
     share_changepoints,
 )
-from .data import UNATTRIBUTED, ObservationTable
+from .data import ObservationTable
+from .episode_finder import (
+    KnownCampaign,
+    Signal,
+    find_episodes,
+    window_signals,
+)
+from .episodes import Episode, EpisodeCell, MetricImpact
 from .errors import InputError
+from .sensitivity import inflow_sensitivity
 from .sequential import DEFAULT_CONCENTRATION, sequential_srm
-from .srm import Window, daily_srm, overall_srm, scan_windows
+from .srm import overall_srm, scan_windows
 from .stratify import (
     IndependenceTest,
     SourceShare,
@@ -38,37 +57,33 @@ from .stratify import (
     source_fits,
 )
 
-ORGANIC_SOURCES = frozenset({"organic", "direct", UNATTRIBUTED})
-
-
-class KnownCampaign(Protocol):
-    """What the diagnosis needs to know of a registered outreach campaign."""
-
-    name: str
-    source: str
-    start: dt.date
-    end: dt.date
+# Builds the impact function of one diagnosis: (table, schedule) -> ((cells, arm) -> impacts).
+ImpactFactory = Callable[[ObservationTable, AllocationSchedule],
+                         Callable[[tuple[EpisodeCell, ...], str], Mapping[str, MetricImpact]]]
 
 
 @dataclass(frozen=True, slots=True)
 class DiagnosisConfig:
-    """Thresholds of the diagnosis.
+    """Thresholds of the diagnosis; every level holds over the experiment's whole life.
 
-    ``alpha``: alert threshold of the tests that are re-read every day over the whole period
-    so far — the whole-period SRM and the per-source fits, both decided by their anytime-valid
-    p-values (Lindon & Malek 2022) so that daily reading does not inflate false alarms; p <
-    0.0005 is a common rule of thumb for SRM alarms (common practice, no source).
-    ``scan_alpha``: family-wise level of the Holm-adjusted window scan at one look; the scan is
-    what localises an inflow, so it gets the larger share of the false-alarm budget (with the
-    defaults, A/A experiments read daily for 28 days alert well under 1% of the time; see
-    benchmarks/RESULTS.md). ``watch_alpha``: level at which a finding is
-    shown as ``watch`` without alerting. ``max_window``: longest run of days scanned.
+    ``alpha``: alert level of the anytime-valid whole-period and per-source tests (p < 0.0005,
+    a common rule of thumb for SRM alarms; common practice, no source). ``scan_alpha``: the
+    window scan's lifetime level; ``change_alpha``: the change detector's. ``watch_alpha``:
+    the lifetime level at which each family's evidence is shown as ``watch``.
+    ``max_window``: longest run of days scanned. ``materiality``: an episode whose worst-case
+    effect shift is below this many standard errors on every metric is shown as ``watch``.
+    ``unseen_share`` and ``unseen_days``: a clean result says what could have gone unseen when
+    an inflow of ``unseen_days`` days must exceed this share of an arm's traffic to be flagged.
     """
 
     alpha: float = 0.0005
     scan_alpha: float = 0.002
-    watch_alpha: float = 0.05
+    change_alpha: float = 0.002
+    watch_alpha: float = 0.01
     max_window: int = 7
+    materiality: float = 0.25
+    unseen_share: float = 0.25
+    unseen_days: int = 2
     sequential_concentration: float = DEFAULT_CONCENTRATION
     changepoints: ChangepointConfig | None = None
     detect_changepoints: bool = True
@@ -78,8 +93,15 @@ class DiagnosisConfig:
             raise InputError("need 0 < alpha < watch_alpha < 1", field="alpha")
         if not 0 < self.scan_alpha < self.watch_alpha:
             raise InputError("need 0 < scan_alpha < watch_alpha", field="scan_alpha")
+        if not 0 < self.change_alpha < self.watch_alpha:
+            raise InputError("need 0 < change_alpha < watch_alpha", field="change_alpha")
         if not 1 <= self.max_window <= 31:
             raise InputError("max_window must be between 1 and 31 days", field="max_window")
+        if not self.materiality >= 0:
+            raise InputError("materiality must be >= 0", field="materiality")
+        if not (self.unseen_share > 0 and 1 <= self.unseen_days <= 31):
+            raise InputError("need unseen_share > 0 and 1 <= unseen_days <= 31",
+                             field="unseen_share")
 
 
 @dataclass(frozen=True, slots=True)
@@ -94,20 +116,23 @@ class SrmSummary:
 
 @dataclass(frozen=True, slots=True)
 class FlaggedDay:
-    """A day inside a window whose mismatch passed the watch or alert level."""
+    """A day of an episode. ``units`` is the episode's figure for the day; ``excess`` the
+    observed minus expected units of every arm."""
 
     date: dt.date
     severity: str
     p_value: float
-    day_p_value: float
-    window_start: dt.date
-    window_end: dt.date
-    inflow_arm: str
+    shape: str
+    arm: str
+    units: float
     excess: dict[str, float]
-    estimated_inflow: float
     sources: tuple[SourceShare, ...]
     campaigns: tuple[str, ...]
     reasons: tuple[str, ...]
+
+    @property
+    def inflow_arm(self) -> str:
+        return self.arm
 
 
 @dataclass(frozen=True, slots=True)
@@ -124,13 +149,24 @@ class SourceSummary:
 
 @dataclass(frozen=True, slots=True)
 class Finding:
-    """Something worth an alert: ``kind`` and ``key`` identify it across diagnoses."""
+    """Evidence behind an episode: ``kind`` and ``key`` identify it across diagnoses."""
 
     kind: str
     key: str
     severity: str
     title: str
     detail: dict[str, Any]
+
+
+@dataclass(frozen=True, slots=True)
+class Unseen:
+    """What a clean result cannot rule out: the smallest ``days``-day inflow the scan flags
+    with 80% probability, per arm, when it exceeds ``unseen_share`` of the arm's traffic."""
+
+    days: int
+    units_per_day: dict[str, float]
+    share_of_arm_traffic: dict[str, float]
+    text: str
 
 
 @dataclass(frozen=True)
@@ -148,59 +184,31 @@ class Diagnosis:
     engagement_changepoints: dict[str, dict[str, tuple[EngagementChangepoint, ...]]]
     advice: tuple[str, ...]
     config: DiagnosisConfig = field(default_factory=DiagnosisConfig)
+    episodes: tuple[Episode, ...] = ()
+    change: ChangeDetection | None = None
+    unseen: Unseen | None = None
 
     @property
     def alert_days(self) -> tuple[dt.date, ...]:
         return tuple(d.date for d in self.flagged_days if d.severity == "alert")
 
     def findings(self) -> tuple[Finding, ...]:
-        """Alert-worthy findings, each with a stable ``(kind, key)``."""
-        found: list[Finding] = []
-        if self.srm.mismatch:
-            found.append(Finding(
-                "srm", "overall", "alert",
-                f"Sample ratio mismatch over the whole period (p = {self.srm.p_value:.2g})",
-                {"p_value": self.srm.p_value, "sequential_p_value": self.srm.sequential_p_value,
-                 "observed": self.srm.observed, "expected": _round(self.srm.expected)}))
-        for day in self.flagged_days:
-            if day.severity != "alert":
-                continue
-            top = day.sources[0].source if day.sources else "no single source"
-            found.append(Finding(
-                "skewed_day", day.date.isoformat(), "alert",
-                f"{day.date.isoformat()}: {day.inflow_arm} got "
-                f"{day.excess[day.inflow_arm]:+.0f} units over plan, mostly via {top}",
-                _flagged_day_dict(day)))
-        for source in self.sources:
-            if source.skewed:
-                found.append(Finding(
-                    "skewed_source", source.source, "alert",
-                    f"Source {source.source} does not follow the allocation "
-                    f"(p = {source.p_value:.2g})", _source_dict(source)))
-        for change in self.share_changepoints:
-            found.append(Finding(
-                "share_changepoint", change.date.isoformat(), "watch",
-                f"Arm shares changed on {change.date.isoformat()}",
-                {"date": change.date.isoformat(), "before": _round(change.before),
-                 "after": _round(change.after)}))
-        for metric, per_arm in self.engagement_changepoints.items():
-            for arm, changes in per_arm.items():
-                for change in changes:
-                    found.append(Finding(
-                        "engagement_changepoint", f"{metric}:{arm}:{change.date.isoformat()}",
-                        "watch",
-                        f"Entrant {metric} in {arm} shifted against the other arms on "
-                        f"{change.date.isoformat()}",
-                        {"metric": metric, "arm": arm, "date": change.date.isoformat(),
-                         "before": change.before, "after": change.after}))
-        return tuple(found)
+        """The evidence of every episode, each with a stable ``(kind, key)``."""
+        found: dict[tuple[str, str], Finding] = {}
+        for episode in self.episodes:
+            for e in episode.evidence:
+                found.setdefault((e.kind, e.key),
+                                 Finding(e.kind, e.key, e.severity, e.title, dict(e.detail)))
+        return tuple(found.values())
 
     def to_dict(self) -> dict[str, Any]:
         """The diagnosis document of the HTTP contract (JSON-safe)."""
+        change = self.change
         return {
             "experiment": self.experiment,
             "as_of": self.as_of.isoformat() if self.as_of else None,
             "status": self.status,
+            "incidents": [e.to_dict() for e in self.episodes],
             "srm": {
                 "statistic": _num(self.srm.statistic),
                 "p_value": _num(self.srm.p_value),
@@ -208,6 +216,11 @@ class Diagnosis:
                 "observed": self.srm.observed,
                 "expected": _round(self.srm.expected),
                 "mismatch": self.srm.mismatch,
+            },
+            "share_change": {
+                "p_value": _num(change.final_p_value) if change else None,
+                "start": (None if change is None or change.start is None or self.as_of is None
+                          else self._date(change.start).isoformat()),
             },
             "flagged_days": [_flagged_day_dict(d) for d in self.flagged_days],
             "sources": [_source_dict(s) for s in self.sources],
@@ -225,21 +238,37 @@ class Diagnosis:
                              for arm, changes in per_arm.items()}
                     for metric, per_arm in self.engagement_changepoints.items()},
             },
+            "unseen": None if self.unseen is None else {
+                "days": self.unseen.days,
+                "units_per_day": {a: round(v, 1) for a, v in self.unseen.units_per_day.items()},
+                "share_of_arm_traffic": {a: round(v, 4) for a, v in
+                                         self.unseen.share_of_arm_traffic.items()},
+                "text": self.unseen.text},
             "advice": list(self.advice),
             "thresholds": {"alpha": self.config.alpha, "scan_alpha": self.config.scan_alpha,
+                           "change_alpha": self.config.change_alpha,
                            "watch_alpha": self.config.watch_alpha,
-                           "max_window_days": self.config.max_window},
+                           "max_window_days": self.config.max_window,
+                           "materiality": self.config.materiality},
         }
+
+    def _date(self, index: int) -> dt.date:
+        days = len(self.change.log_e) if self.change is not None else 0
+        assert self.as_of is not None
+        return self.as_of - dt.timedelta(days=days - 1 - index)
 
 
 def diagnose(table: ObservationTable, schedule: AllocationSchedule, *,
              config: DiagnosisConfig | None = None, experiment: str | None = None,
              as_of: dt.date | None = None,
-             campaigns: Sequence[KnownCampaign] = ()) -> Diagnosis:
+             campaigns: Sequence[KnownCampaign] = (),
+             impact: ImpactFactory | None = None) -> Diagnosis:
     """Run every detector on ``table`` against ``schedule``.
 
     ``as_of`` truncates the data to days up to that date (default: the last day with units).
-    Known ``campaigns`` are named as the likely cause of an excess on their days and source.
+    Known ``campaigns`` are named as the likely cause of an episode on their days and source.
+    ``impact`` builds, for this table, the function giving an episode's effect on each metric
+    (:func:`detectors.contamination.impact_function`); without it episodes count as material.
 
     Example:
         >>> import pandas as pd
@@ -249,8 +278,8 @@ def diagnose(table: ObservationTable, schedule: AllocationSchedule, *,
         ...     "entered": [5000] * 14 + [5000] * 9 + [5700] + [5000] * 4})
         >>> t = ObservationTable.from_frame(rows, ["control", "cards"])
         >>> d = diagnose(t, AllocationSchedule.constant(["control", "cards"]))
-        >>> d.status, [x.isoformat() for x in d.alert_days]
-        ('alert', ['2026-03-10'])
+        >>> d.status, [(e.shape, e.arm, e.start.isoformat(), round(e.units)) for e in d.episodes]
+        ('alert', [('inflow', 'cards', '2026-03-10', 700)])
     """
     config = config or DiagnosisConfig()
     if tuple(schedule.arms) != tuple(table.arms):
@@ -282,14 +311,9 @@ def diagnose(table: ObservationTable, schedule: AllocationSchedule, *,
         {a: int(v) for a, v in zip(arms, overall.observed, strict=True)},
         {a: float(v) for a, v in zip(arms, overall.expected, strict=True)},
         bool(sequential.final_p_value < config.alpha))
-
-    daily = daily_srm(counts, planned)
     scan = scan_windows(counts, planned, max_window=config.max_window,
                         watch_alpha=config.watch_alpha)
-    excess = excess_by_source(table.entered, planned)
-    flagged = _flagged_days(scan.selected, daily.p_value, counts, planned, excess, table,
-                            config, campaigns)
-
+    change = detect_share_change(counts, planned, config.sequential_concentration)
     fits = source_fits(table.entered, planned, sources, alpha=config.alpha,
                        concentration=config.sequential_concentration)
     source_summaries = tuple(SourceSummary(
@@ -311,158 +335,152 @@ def diagnose(table: ObservationTable, schedule: AllocationSchedule, *,
             if not engagement[metric]:
                 del engagement[metric]
 
-    status = _status(srm, flagged, source_summaries, share_changes, engagement, config)
-    advice = _advice(status, srm, flagged, source_summaries, share_changes, engagement, arms,
-                     schedule, config)
+    signals = _signals(scan.selected, change, srm, source_summaries, dates, config)
+    episodes = find_episodes(
+        table, planned, signals, share_changes=share_changes, engagement=engagement,
+        allocation_changes=schedule.change_dates(), campaigns=campaigns,
+        impact=impact(table, schedule) if impact is not None and table.metrics else None,
+        materiality=config.materiality)
+    flagged = _flagged_days(episodes, table, planned)
+    status = _status(episodes)
+    unseen = _unseen(counts, planned, arms, config) if not episodes else None
+    advice = _advice(status, episodes, engagement, schedule, unseen, config)
     return Diagnosis(experiment, dates[-1].item(), status, srm, flagged, source_summaries,
-                     independence, share_changes, engagement, advice, config)
+                     independence, share_changes, engagement, advice, config, episodes,
+                     change, unseen)
 
 
-def _flagged_days(windows: Sequence[Window], day_p: np.ndarray, counts: np.ndarray,
-                  planned: np.ndarray, excess: np.ndarray, table: ObservationTable,
-                  config: DiagnosisConfig, campaigns: Sequence[KnownCampaign]
+def _signals(windows: Sequence[Any], change: ChangeDetection, srm: SrmSummary,
+             sources: Sequence[SourceSummary], dates: np.ndarray, config: DiagnosisConfig
+             ) -> list[Signal]:
+    """Every deciding test's evidence, with the levels it is read at."""
+    signals = window_signals(windows, dates, config.scan_alpha, config.watch_alpha,
+                             config.max_window)
+    if change.start is not None and change.peak is not None \
+            and change.final_p_value < config.watch_alpha:
+        first = dates[change.start].item().isoformat()
+        signals.append(Signal(
+            "share_change", first, change.final_p_value, config.change_alpha,
+            config.watch_alpha, (change.start, change.peak),
+            f"Arm shares changed from about {first} (sequential change test, anytime-valid "
+            f"p = {change.final_p_value:.2g})",
+            {"start": first, "peak": dates[change.peak].item().isoformat(),
+             "p_value": change.final_p_value, "alert_level": config.change_alpha,
+             "test": "mixture of Dirichlet-multinomial test martingales over start days"}))
+    if srm.sequential_p_value < config.watch_alpha:
+        signals.append(Signal(
+            "srm", "overall", srm.sequential_p_value, config.alpha, config.watch_alpha, None,
+            f"Sample ratio mismatch over the whole period (anytime-valid p = "
+            f"{srm.sequential_p_value:.2g})",
+            {"p_value": srm.sequential_p_value, "chi_square_p_value": srm.p_value,
+             "alert_level": config.alpha, "observed": srm.observed,
+             "expected": _round(srm.expected)}))
+    for source in sources:
+        if source.adjusted_sequential_p_value < config.watch_alpha:
+            signals.append(Signal(
+                "skewed_source", source.source, source.adjusted_sequential_p_value,
+                config.alpha, config.watch_alpha, None,
+                f"Source {source.source} does not follow the allocation (anytime-valid p = "
+                f"{source.adjusted_sequential_p_value:.2g} after Holm across sources)",
+                _source_dict(source) | {"alert_level": config.alpha}, source=source.source))
+    return signals
+
+
+def _flagged_days(episodes: Sequence[Episode], table: ObservationTable, planned: np.ndarray
                   ) -> tuple[FlaggedDay, ...]:
-    arms, sources, dates = table.arms, table.sources, table.dates
-    expected = counts.sum(axis=1, keepdims=True) * planned
-    flagged: list[FlaggedDay] = []
-    for window in windows:
-        span = slice(window.start, window.stop)
-        window_excess = (counts[span] - expected[span]).sum(axis=0)
-        relative = window_excess / np.maximum(expected[span].sum(axis=0), 1e-12)
-        inflow_arm = int(np.argmax(relative))
-        severity = "alert" if window.adjusted_p_value < config.scan_alpha else "watch"
-        start, end = dates[window.start].item(), dates[window.stop - 1].item()
-        for day in range(window.start, window.stop):
-            date = dates[day].item()
-            day_excess = counts[day] - expected[day]
-            shares = attribute_excess(excess[day:day + 1], inflow_arm, sources)
-            if day_excess[inflow_arm] <= 0 and window.length > 1:
-                continue  # a day of the window that did not add to the inflow arm
-            main = set(_main_sources({s.source: s.excess for s in shares}))
-            hits = tuple(c.name for c in campaigns
-                         if c.start <= date <= c.end and (not shares or c.source in main))
-            inflow = max(day_excess[inflow_arm], 0.0) / (1.0 - planned[day, inflow_arm])
-            reasons = [
-                f"{arms[inflow_arm]} received {day_excess[inflow_arm]:+.0f} units against "
-                f"plan ({100 * day_excess[inflow_arm] / max(expected[day, inflow_arm], 1):+.1f}%"
-                f"), as if about {inflow:.0f} extra units had entered it alone",
-                f"window {start.isoformat()}..{end.isoformat()}: chi-square p = "
-                f"{window.p_value:.2g}, Holm-adjusted over all windows of "
-                f"1-{config.max_window} days p = {window.adjusted_p_value:.2g}",
-            ]
+    arms, dates = table.arms, table.dates
+    index = {d.item(): i for i, d in enumerate(dates)}
+    excess = excess_by_source(table.entered, planned)
+    flagged = []
+    for episode in episodes:
+        arm = arms.index(episode.arm)
+        for day in episode.daily:
+            i = index[day.date]
+            shares = attribute_excess(excess[i:i + 1] * np.sign(episode.units or 1.0), arm,
+                                      table.sources)
+            reasons = [f"{episode.shape.replace('_', ' ')} episode {episode.start.isoformat()}"
+                       f"..{episode.end.isoformat()}: {day.units:+,.0f} units in {episode.arm} "
+                       "on this day"]
             if shares:
-                top = shares[0]
-                reasons.append(f"source {top.source} explains {100 * top.share_of_excess:.0f}% "
-                               "of the excess")
-            reasons.extend(f"campaign {name} was running on this day" for name in hits)
+                reasons.append(f"source {shares[0].source} explains "
+                               f"{100 * shares[0].share_of_excess:.0f}% of the day's imbalance")
+            campaigns = tuple(c for c in episode.campaigns)
+            reasons.extend(f"campaign {name} was running" for name in campaigns)
             flagged.append(FlaggedDay(
-                date, severity, window.adjusted_p_value,
-                float(np.nan_to_num(day_p[day], nan=1.0)), start, end, arms[inflow_arm],
-                {a: float(v) for a, v in zip(arms, day_excess, strict=True)},
-                float(max(day_excess[inflow_arm], 0.0) / (1.0 - planned[day, inflow_arm])),
-                shares, hits, tuple(reasons)))
-    return tuple(flagged)
+                day.date, episode.severity, episode.p_value, episode.shape, episode.arm,
+                day.units,
+                {a: float(v) for a, v in zip(arms, excess[i].sum(axis=1), strict=True)},
+                shares, campaigns, tuple(reasons)))
+    return tuple(sorted(flagged, key=lambda d: d.date))
 
 
-def _status(srm: SrmSummary, flagged: Sequence[FlaggedDay], sources: Sequence[SourceSummary],
-            share_changes: Sequence[ShareChangepoint], engagement: dict[str, Any],
-            config: DiagnosisConfig) -> str:
-    if srm.mismatch or any(d.severity == "alert" for d in flagged) \
-            or any(s.skewed for s in sources):
+def _status(episodes: Sequence[Episode]) -> str:
+    if any(e.severity == "alert" and e.material for e in episodes):
         return "alert"
-    if flagged or share_changes or engagement or srm.p_value < config.watch_alpha \
-            or srm.sequential_p_value < config.watch_alpha \
-            or any(s.adjusted_p_value < config.watch_alpha for s in sources):
-        return "watch"
-    return "healthy"
+    return "watch" if episodes else "healthy"
 
 
-def _advice(status: str, srm: SrmSummary, flagged: Sequence[FlaggedDay],
-            sources: Sequence[SourceSummary], share_changes: Sequence[ShareChangepoint],
-            engagement: dict[str, Any], arms: Sequence[str], schedule: AllocationSchedule,
-            config: DiagnosisConfig) -> tuple[str, ...]:
+def _unseen(counts: np.ndarray, planned: np.ndarray, arms: Sequence[str],
+            config: DiagnosisConfig) -> Unseen | None:
+    """The sensitivity caveat of a clean result, when inflows of ``unseen_share`` of an arm's
+    traffic or more could pass the scan unflagged."""
+    figures, baseline = inflow_sensitivity(counts, planned, arms, days=config.unseen_days,
+                                           alpha=config.scan_alpha,
+                                           max_window=config.max_window)
+    share = {s.arm: s.share_of_arm_traffic for s in figures}
+    if min(share.values()) <= config.unseen_share:
+        return None
+    units = {s.arm: s.units_per_day for s in figures}
+    # Ties (symmetric weights) go to the first name, so the text does not depend on arm order.
+    smallest = min(figures, key=lambda s: (round(s.units_per_day, 6), s.arm))
+    text = (f"An inflow below about {smallest.units_per_day:,.0f} units a day "
+            f"({100 * smallest.share_of_arm_traffic:.0f}% of {smallest.arm}'s traffic) held for "
+            f"{config.unseen_days} days could have gone unseen: at about "
+            f"{baseline:,.0f} units a day the experiment is too small to "
+            "see moderate inflows.")
+    return Unseen(config.unseen_days, units, share, text)
+
+
+def _advice(status: str, episodes: Sequence[Episode], engagement: Mapping[str, Any],
+            schedule: AllocationSchedule, unseen: Unseen | None, config: DiagnosisConfig
+            ) -> tuple[str, ...]:
     advice: list[str] = []
-    alert_days = [d for d in flagged if d.severity == "alert"]
-    if alert_days:
-        by_arm: dict[str, list[FlaggedDay]] = {}
-        for day in alert_days:
-            by_arm.setdefault(day.inflow_arm, []).append(day)
-        for arm, days in by_arm.items():
-            inflow = sum(d.estimated_inflow for d in days)
-            weight: dict[str, float] = {}
-            for day in days:
-                for share in day.sources:
-                    weight[share.source] = weight.get(share.source, 0.0) + share.excess
-            named = _main_sources(weight)
-            dates = ", ".join(d.date.isoformat() for d in days)
-            advice.append(
-                f"About {inflow:.0f} units entered {arm} beyond its planned share on {dates}, "
-                f"mostly through {' and '.join(named) or 'an unlabelled source'}. Until this is "
-                "explained, the experiment's effect estimate is not trustworthy.")
-            campaigns = sorted({c for d in days for c in d.campaigns})
-            if campaigns or any(s not in ORGANIC_SOURCES for s in named):
-                advice.append(
-                    "If an email, push or SMS campaign reached only some arms' users, fix the "
-                    "design: send it to an equal share of every arm, or log who would have "
-                    "received it in every arm and analyse by intent to treat."
-                    + (f" Registered campaigns on these days: {', '.join(campaigns)}."
-                       if campaigns else ""))
-            else:
-                advice.append(
-                    "The excess arrived through organic or unlabelled traffic: look for a "
-                    "partner link, a ramp step or an assignment change on those days, and label "
-                    "entry sources so the next inflow can be traced.")
+    for episode in episodes:
+        advice.append(episode.summary)
+        advice.extend(a for a in episode.advice if a not in advice)
+    if any(e.shape == "inflow" for e in episodes):
         advice.append(
-            "Re-estimate the effect by entry cohort (reweight, by source or by source and "
-            "window) to see how much the inflow moved it. A re-weighted estimate answers a "
-            "different question (the effect on the population the target mix describes) and "
-            "rests on the cohorts capturing why the inflow differs; it is not a randomised "
-            "estimate.")
-    if srm.mismatch and not alert_days:
+            "Re-estimate the effect (reweight): by default it leaves out the cells of the "
+            "episode, and the trimming bounds say how far the inflow could move the effect "
+            "whatever the newcomers were like. A re-weighted estimate answers a different "
+            "question (the effect on the population of the cells it keeps) and is not a "
+            "randomised estimate.")
+    inside = {(m, a, c.date) for e in episodes for m, per_arm in engagement.items()
+              for a, changes in per_arm.items() for c in changes
+              if e.start - dt.timedelta(days=1) <= c.date <= e.end + dt.timedelta(days=1)}
+    outside = sorted({c.date for m, per_arm in engagement.items()
+                      for a, changes in per_arm.items() for c in changes
+                      if (m, a, c.date) not in inside})
+    if outside:
         advice.append(
-            "The whole-period arm counts do not match the plan (anytime-valid p = "
-            f"{srm.sequential_p_value:.2g}) and no "
-            "short window explains it: suspect a persistent cause (assignment or logging bug, "
-            "bot filtering in one arm, a redirect) and do not read the effect until it is found.")
-    skewed = [s.source for s in sources if s.skewed]
-    if skewed:
-        advice.append(f"Entry sources {', '.join(skewed)} do not follow the allocation: check how "
-                      "their units are assigned and whether their traffic targets one arm.")
-    if share_changes:
-        advice.append("Arm shares shifted on "
-                      + ", ".join(c.date.isoformat() for c in share_changes)
-                      + ": compare with ramp steps, releases and campaign dates.")
-    if engagement:
-        advice.append("Entrant engagement changed against the other arms on some days "
-                      "(see changepoints.engagement): a different population may have entered.")
+            "Outcome metrics of entering units moved against the other arms on "
+            + ", ".join(d.isoformat() for d in outside)
+            + " while the arm counts followed the plan: that is what a treatment or novelty "
+            "effect looks like, not by itself a sign that a different population entered.")
     if schedule.change_dates():
         advice.append("The allocation changed on "
                       + ", ".join(d.isoformat() for d in schedule.change_dates())
                       + ": units that entered before and after a ramp step are not comparable "
                       "without accounting for the time of entry.")
     if status == "healthy":
-        advice.append(
-            f"No sample ratio problem found at the alert level p < {config.alpha:g}: arm counts "
-            "follow the plan overall, in every window of up to "
-            f"{config.max_window} days and in every entry source.")
-    elif status == "watch" and not advice:
-        advice.append("Some tests are below the watch level but none reaches the alert level; "
-                      "keep the data flowing and check again tomorrow.")
-    return tuple(advice)
-
-
-def _main_sources(excess: dict[str, float], cover: float = 0.8) -> list[str]:
-    """The fewest sources (largest first) that explain ``cover`` of the positive excess."""
-    ranked = sorted(((s, v) for s, v in excess.items() if v > 0), key=lambda kv: -kv[1])
-    total = sum(v for _, v in ranked)
-    named: list[str] = []
-    running = 0.0
-    for source, value in ranked:
-        named.append(source)
-        running += value
-        if running >= cover * total:
-            break
-    return named
+        clean = (f"No sample ratio problem found: the arm counts follow the plan over the whole "
+                 f"period, in every window of up to {config.max_window} days, from any start "
+                 "day and in every entry source.")
+        if unseen is not None:
+            clean = ("No sample ratio problem found at the alert levels, but that does not show "
+                     "that the arm counts follow the plan. " + unseen.text)
+        advice.append(clean)
+    return tuple(dict.fromkeys(advice))
 
 
 def _flagged_day_dict(day: FlaggedDay) -> dict[str, Any]:
@@ -470,11 +488,10 @@ def _flagged_day_dict(day: FlaggedDay) -> dict[str, Any]:
         "date": day.date.isoformat(),
         "severity": day.severity,
         "p_value": _num(day.p_value),
-        "day_p_value": _num(day.day_p_value),
-        "window": {"start": day.window_start.isoformat(), "end": day.window_end.isoformat()},
-        "inflow_arm": day.inflow_arm,
+        "shape": day.shape,
+        "arm": day.arm,
+        "units": round(day.units, 1),
         "excess": _round(day.excess),
-        "estimated_inflow": round(day.estimated_inflow, 1),
         "sources": [{"source": s.source, "share_of_excess": round(s.share_of_excess, 4),
                      "excess": round(s.excess, 1)} for s in day.sources],
         "campaigns": list(day.campaigns),
@@ -499,5 +516,5 @@ def _round(values: dict[str, float]) -> dict[str, float]:
     return {k: round(float(v), 2) for k, v in values.items()}
 
 
-__all__ = ["Diagnosis", "DiagnosisConfig", "Finding", "FlaggedDay", "diagnose",
+__all__ = ["Diagnosis", "DiagnosisConfig", "Finding", "FlaggedDay", "Unseen", "diagnose",
            "expected_by_source"]

@@ -124,6 +124,7 @@ class Episode:
     planned_weights: Mapping[str, float] | None = None
     context: tuple[str, ...] = ()  # outcome changepoints that coincide: shown, never decisive
     ongoing: bool = False  # the episode reaches the last day of data
+    alert_level: float = 0.0  # the level the deciding p-value is compared with
 
     @property
     def days(self) -> tuple[dt.date, ...]:
@@ -147,6 +148,7 @@ class Episode:
                          "units": round(s.units, 1)} for s in self.sources],
             "campaigns": list(self.campaigns), "severity": self.severity,
             "material": self.material, "p_value": self.p_value,
+            "alert_level": self.alert_level,
             "detected_by": list(self.detected_by), "summary": self.summary,
             "impact": {m: i.to_dict() for m, i in self.impact.items()},
             "observed_weights": (None if self.observed_weights is None

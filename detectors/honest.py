@@ -65,6 +65,7 @@ from .reweight import (
     Comparison,
     Decomposition,
     Reweighting,
+    _did_you_mean,
     _estimates,
     _json,
     _unit_variance,
@@ -147,8 +148,9 @@ def layout(table: ObservationTable, metric: str, cells: Sequence[Cell],
     """
     if metric not in table.metrics:
         known = sorted(table.metrics)
-        raise InputError([Problem("metric", f"unknown metric {metric!r}; the data has "
-                                  f"{known if known else 'no metrics'}")])
+        raise InputError([Problem("metric", f"unknown metric {metric!r}"
+                                  + _did_you_mean(metric, known)
+                                  + f"; the data has {', '.join(known) or 'no metrics'}")])
     cube = table.metrics[metric]
     shape = table.entered.shape
     excess = np.zeros(shape)

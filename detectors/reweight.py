@@ -43,6 +43,7 @@ Example (Larkspur Trails demo scenario: a push campaign reached only ``cards``):
 from __future__ import annotations
 
 import datetime as dt
+import difflib
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -295,8 +296,9 @@ def _check_request(table: ObservationTable, metric: str, target: str,
     problems: list[Problem] = []
     if metric not in table.metrics:
         known = sorted(table.metrics)
-        problems.append(Problem("metric", f"unknown metric {metric!r}; the data has "
-                                f"{known if known else 'no metrics'}"))
+        problems.append(Problem("metric", f"unknown metric {metric!r}"
+                                + _did_you_mean(metric, known)
+                                + f"; the data has {', '.join(known) or 'no metrics'}"))
     if target not in TARGETS:
         problems.append(Problem("target", f"unknown target {target!r}; must be one of "
                                 f"{list(TARGETS)}"))
@@ -314,6 +316,14 @@ def _check_request(table: ObservationTable, metric: str, target: str,
     if problems:
         raise InputError(problems)
     return grouping
+
+
+def _did_you_mean(name: str, known: Sequence[str]) -> str:
+    """`` (did you mean 'x'?)`` for the known name closest to ``name``, if one is close."""
+    folded = {k.casefold(): k for k in known}
+    close = folded.get(name.casefold()) or next(
+        iter(difflib.get_close_matches(name, list(known), n=1, cutoff=0.6)), None)
+    return f" (did you mean {close!r}?)" if close else ""
 
 
 def _day_mask(table: ObservationTable, dates: Sequence[dt.date], field: str) -> np.ndarray:
@@ -337,8 +347,9 @@ def _exclusions(table: ObservationTable, exclude_sources: Sequence[str],
         exclude_sources = (exclude_sources,)
     unknown = sorted(set(exclude_sources) - set(table.sources))
     if unknown:
-        raise InputError([Problem("exclude_sources", f"unknown source(s) {unknown}; the data "
-                                  f"has {list(table.sources)}")])
+        raise InputError([Problem("exclude_sources", "; ".join(
+            f"unknown source {name!r}{_did_you_mean(name, table.sources)}" for name in unknown)
+            + f"; the data has {', '.join(table.sources)}")])
     keep_day = ~_day_mask(table, exclude_dates, "exclude_dates")
     keep_source = ~np.isin(np.array(table.sources, dtype=object),
                            np.array(list(exclude_sources), dtype=object))

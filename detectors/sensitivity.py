@@ -1,11 +1,10 @@
 """Detection sensitivity: the smallest inflow Inrush would flag, from the experiment's own traffic.
 
 Inrush alerts on a run of days when the window scan (:func:`detectors.srm.scan_windows`) finds
-a window whose Pearson chi-square p-value, Holm-adjusted over every window of 1..``max_window``
-days, is below ``alpha``. Holm's first step is Bonferroni (Holm 1979, "A simple sequentially
-rejective multiple test procedure", Scand. J. Statist. 6:65-70): some window is flagged exactly
-when the smallest raw p-value is below ``alpha / m``, with ``m`` the number of windows tested
-(``sum_{L=1..max_window} (D - L + 1)`` for ``D`` days with units).
+a window whose Pearson chi-square p-value is below the window's share of the scan's lifetime
+level ``alpha`` (:func:`detectors.srm.window_level`): for an inflow that ends on day ``D`` of
+the experiment, ``alpha * gamma(D) / min(max_window, D)``. ``family_size`` reports that level
+as an equivalent number of Bonferroni-split windows, ``alpha / level``.
 
 For an inflow of ``x`` extra units a day into arm ``a`` during ``K`` days, on top of a baseline
 of ``N`` units a day split by weights ``w``, the ``K``-day window's expected counts are
@@ -37,7 +36,7 @@ Example:
     >>> counts = np.full((28, 2), 2000); planned = np.full((28, 2), 0.5)
     >>> s = sensitivity(counts, planned, ["control", "cards"], days=3)
     >>> s.family_size, round(s.arms[0].units_per_day)
-    (175, 207)
+    (1088, 221)
 """
 
 from __future__ import annotations
@@ -48,10 +47,11 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import optimize, stats
+from scipy import optimize, special, stats
 
 from .errors import InputError, Problem
 from .sequential import DEFAULT_CONCENTRATION, log_bayes_factor
+from .srm import window_level
 
 WEIGHT_TOLERANCE = 1e-6
 MAX_WINDOW_LIMIT = 31
@@ -94,6 +94,7 @@ class Sensitivity:
     overall_alpha: float
     max_window: int
     family_size: int
+    level: float
     baseline_units_per_day: float
     baseline_days_used: int
     weights: dict[str, float]
@@ -125,8 +126,8 @@ class Sensitivity:
                       f"{worst.units:,.0f} units into {worst.arm})")
         return (f"With about {self.baseline_units_per_day:,.0f} units a day, Inrush flags an "
                 f"inflow held for {held} with {100 * self.power:.0f}% probability once it "
-                f"reaches about {inflows} (window test at p < {self.alpha:g} after Holm over "
-                f"{self.family_size:,} windows); {period}.")
+                f"reaches about {inflows} (window test at a lifetime level of {self.alpha:g}, "
+                f"spent as if over {self.family_size:,} windows); {period}.")
 
     @property
     def caveats(self) -> tuple[str, ...]:
@@ -154,6 +155,7 @@ class Sensitivity:
             "overall_alpha": self.overall_alpha,
             "max_window": self.max_window,
             "family_size": self.family_size,
+            "level": self.level,
             "baseline_units_per_day": round(self.baseline_units_per_day, 2),
             "weights": {a: round(w, 6) for a, w in self.weights.items()},
             "arms": [{"arm": s.arm, "units_per_day": round(s.units_per_day, 2),
@@ -259,13 +261,15 @@ def smallest_inflow(baseline: float, weights: Sequence[float] | np.ndarray, arm:
         >>> round(smallest_inflow(4000.0, [0.5, 0.5], 1, 3, 0.0005 / 175, 0.8))
         207
     """
-    def gap(inflow: float) -> float:
-        return inflow_power(inflow, baseline, weights, arm, days, level) - power
-
-    upper = max(baseline, 1.0)
-    while gap(upper) < 0:
-        upper *= 2.0
-    return float(optimize.brentq(gap, 0.0, upper, xtol=1e-8, rtol=1e-12))
+    # The noncentrality reaching ``power`` (scipy.special.chndtrinc inverts the noncentral
+    # chi-square cdf in it), then lambda = K x^2 (1 - w) / ((N + x) w) solved for x >= 0.
+    df = len(weights) - 1
+    critical = float(stats.chi2.isf(level, df))
+    target = 0.0 if float(stats.chi2.sf(critical, df)) >= power else float(
+        special.chndtrinc(critical, df, 1.0 - power))
+    w = float(np.asarray(weights, dtype=float)[arm])
+    a, b = days * (1.0 - w), target * w
+    return float((b + math.sqrt(b * b + 4.0 * a * b * baseline)) / (2.0 * a))
 
 
 def sensitivity(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[str], *, days: int,
@@ -287,25 +291,15 @@ def sensitivity(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[st
         >>> counts = np.tile([3600, 400], (21, 1)); planned = np.tile([0.9, 0.1], (21, 1))
         >>> s = sensitivity(counts, planned, ["control", "cards"], days=2)
         >>> [round(a.units_per_day) for a in s.arms]
-        [802, 82]
+        [860, 88]
     """
     counts, weights_by_day, arm_names = _validate(daily_counts, planned, arms, days, alpha,
                                                   max_window, power, baseline_days,
                                                   overall_alpha, concentration)
     totals = counts.sum(axis=1)
-    active = np.flatnonzero(totals > 0)
-    recent = active[-baseline_days:]
-    baseline = float(totals[recent].mean())
-    weights = [float(w) for w in weights_by_day[active[-1]]]
+    inflows, baseline, used, weights, level = _window_figures(
+        counts, weights_by_day, arm_names, days, alpha, max_window, power, baseline_days)
     window = min(days, max_window)
-    family = (_tested_windows(totals, max_window) if days <= counts.shape[0]
-              else window_family_size(days, max_window))
-    level = alpha / family
-
-    inflows = []
-    for index, arm in enumerate(arm_names):
-        x = smallest_inflow(baseline, weights, index, window, level, power)
-        inflows.append(InflowSensitivity(arm, days, x, x / (baseline * weights[index])))
 
     period_units = int(np.rint(totals.sum()))
     period_shares = [float(v) for v in
@@ -319,10 +313,50 @@ def sensitivity(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[st
     return Sensitivity(
         days=days, window_days=window, power=power, alpha=alpha, overall_alpha=overall_alpha,
         max_window=max_window,
-        family_size=family, baseline_units_per_day=baseline, baseline_days_used=int(recent.size),
+        family_size=round(alpha / level), level=level, baseline_units_per_day=baseline,
+        baseline_days_used=used,
         weights=dict(zip(arm_names, weights, strict=True)),
         arms=tuple(inflows), whole_period=tuple(shifts), period_days=int(counts.shape[0]),
         period_units=period_units)
+
+
+def inflow_sensitivity(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[str], *,
+                       days: int, alpha: float = 0.0005, max_window: int = 7,
+                       power: float = 0.8, baseline_days: int = 14
+                       ) -> tuple[tuple[InflowSensitivity, ...], float]:
+    """The window part of :func:`sensitivity` alone (cheap enough for every diagnosis): the
+    smallest ``days``-day inflow into each arm flagged with ``power``, and the baseline units
+    a day it assumes. Inputs are trusted (the diagnosis built them).
+
+    Example:
+        >>> figures, baseline = inflow_sensitivity(np.full((28, 2), 150), np.full((28, 2), .5),
+        ...                                        ["control", "cards"], days=2)
+        >>> baseline, [round(f.share_of_arm_traffic, 2) for f in figures]
+        (300.0, [0.54, 0.54])
+    """
+    counts = np.asarray(daily_counts, dtype=float)
+    inflows, baseline, _, _, _ = _window_figures(counts, np.asarray(planned, dtype=float),
+                                                 tuple(arms), days, alpha, max_window, power,
+                                                 baseline_days)
+    return inflows, baseline
+
+
+def _window_figures(counts: np.ndarray, weights_by_day: np.ndarray, arm_names: tuple[str, ...],
+                    days: int, alpha: float, max_window: int, power: float, baseline_days: int
+                    ) -> tuple[tuple[InflowSensitivity, ...], float, int, list[float], float]:
+    totals = counts.sum(axis=1)
+    active = np.flatnonzero(totals > 0)
+    recent = active[-baseline_days:]
+    baseline = float(totals[recent].mean())
+    weights = [float(w) for w in weights_by_day[active[-1]]]
+    window = min(days, max_window)
+    # The inflow is taken to end on the latest day (or on day ``days`` of a younger experiment).
+    level = window_level(max(int(counts.shape[0]), days), max_window, alpha)
+    inflows = []
+    for index, arm in enumerate(arm_names):
+        x = smallest_inflow(baseline, weights, index, window, level, power)
+        inflows.append(InflowSensitivity(arm, days, x, x / (baseline * weights[index])))
+    return tuple(inflows), baseline, int(recent.size), weights, level
 
 
 def _shifted_counts(total: float, shares: np.ndarray, arm: int, delta: float) -> np.ndarray:
@@ -379,14 +413,6 @@ def smallest_share_shift(total: float, shares: Sequence[float] | np.ndarray, arm
     scale = total * weights[arm] / (1.0 - weights[arm])  # X^2 = scale * delta^2
     delta = math.sqrt(noncentrality_beyond(critical, len(weights) - 1, power) / scale)
     return delta if weights[arm] * (1.0 + delta) < 1.0 else None
-
-
-def _tested_windows(totals: np.ndarray, max_window: int) -> int:
-    """Windows of 1..max_window days holding units: the family ``scan_windows`` adjusts over."""
-    cumulative = np.concatenate([[0.0], np.cumsum(totals, dtype=float)])
-    n_days = totals.shape[0]
-    return int(sum(np.count_nonzero(cumulative[length:] - cumulative[:n_days - length + 1] > 0)
-                   for length in range(1, min(max_window, n_days) + 1)))
 
 
 def _validate(daily_counts: np.ndarray, planned: np.ndarray, arms: Sequence[str], days: int,

@@ -18,8 +18,8 @@ def daily_series(table: ObservationTable, schedule: AllocationSchedule,
     """What a dashboard plots, one record per day (JSON-safe).
 
     Per day and arm: units entered, observed share of the day's units, planned share and, per
-    metric, the entrants' mean; per source and day the units per arm. Days flagged by the
-    diagnosis carry their severity.
+    metric, the entrants' mean; per source and day the units per arm. Days of an incident carry
+    its severity and ``incident: {shape, arm, units}`` (the incident's figure for the day).
 
     Example:
         >>> import pandas as pd
@@ -39,8 +39,12 @@ def daily_series(table: ObservationTable, schedule: AllocationSchedule,
         means = {name: cube.sum(axis=2)[:, :, 1] / cube.sum(axis=2)[:, :, 0]
                  for name, cube in table.metrics.items()}
     severity: dict[str, str] = {}
+    episode_day: dict[str, dict[str, Any]] = {}
     if diagnosis is not None:
         severity = {d.date.isoformat(): d.severity for d in diagnosis.flagged_days}
+        episode_day = {d.date.isoformat(): {"shape": d.shape, "arm": d.arm,
+                                            "units": round(d.units, 1)}
+                       for d in diagnosis.flagged_days}
     day_labels = [d.isoformat() for d in table.date_list()]
     days = []
     for i, label in enumerate(day_labels):
@@ -48,6 +52,7 @@ def daily_series(table: ObservationTable, schedule: AllocationSchedule,
             "date": label,
             "flagged": label in severity,
             "severity": severity.get(label),
+            "incident": episode_day.get(label),
             "arms": {arm: {
                 "entered": int(counts[i, a]),
                 "observed_share": _safe(shares[i, a]),

@@ -1,5 +1,16 @@
 """Sample ratio mismatch: Pearson chi-square goodness of fit against the planned allocation.
 
+The window scan is read again after every upload, so its level is spent over the experiment's
+life rather than per look: a window ending on day ``t`` (1-based) is tested at
+``alpha * gamma(t) / k_t`` with ``k_t`` the windows ending that day and
+``gamma(t) = (t + 6)^-1.5 / zeta(1.5, 7)`` (which sums to 1 over all days; the offset of a
+week keeps the first days from taking most of the budget), a Bonferroni split of
+``alpha`` over every window that will ever be tested. A window's counts do not change once its
+last day is in, so the chance that any window of an A/A experiment is ever flagged stays below
+``alpha`` however often, and however long, the experiment is read (alpha spending, Lan & DeMets
+1983, "Discrete sequential boundaries for clinical trials", Biometrika 70:659-663, applied to a
+family that grows by day).
+
 The planned allocation may change over time (ramps), so expected counts are built day by day as
 ``units on the day x weights in force on the day`` and summed over whatever period is tested.
 With ramps the pooled statistic is slightly conservative (a sum of multinomials with different
@@ -11,9 +22,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from scipy import special, stats
 
-from .multiplicity import holm_adjust
+SPENDING_EXPONENT = 1.5
+SPENDING_OFFSET = 6
+_SPENDING_NORMALISER = float(special.zeta(SPENDING_EXPONENT, SPENDING_OFFSET + 1))
 
 
 @dataclass(frozen=True, slots=True)
@@ -54,10 +67,10 @@ class Window:
 
 @dataclass(frozen=True, slots=True)
 class WindowScan:
-    """Windows of 1..max_window days, Holm-adjusted over all windows tested.
+    """Windows of 1..max_window days with lifetime-adjusted p-values (:func:`spending`).
 
     ``selected`` holds non-overlapping windows picked greedily by smallest p-value among those
-    whose adjusted p-value is below ``watch_alpha``; ``n_tests`` is the family size.
+    whose adjusted p-value is below ``watch_alpha``; ``n_tests`` is the number of windows tested.
     """
 
     selected: tuple[Window, ...]
@@ -117,15 +130,42 @@ def daily_srm(counts: np.ndarray, planned: np.ndarray) -> DailySrm:
     return DailySrm(statistic, p_value, counts.astype(float), expected)
 
 
+def spending(end_day: np.ndarray | int) -> np.ndarray:
+    """Share of the scan's lifetime level spent on windows ending on 1-based day ``end_day``.
+
+    ``gamma(t) = (t + 6)^-1.5 / zeta(1.5, 7)`` (Hurwitz zeta); the shares of all days sum to 1.
+
+    Example:
+        >>> round(float(spending(1)), 4), round(float(spending(np.arange(1, 10**6)).sum()), 2)
+        (0.0689, 1.0)
+    """
+    t = np.asarray(end_day, dtype=float)
+    return (t + SPENDING_OFFSET) ** -SPENDING_EXPONENT / _SPENDING_NORMALISER
+
+
+def window_level(end_day: int, max_window: int, alpha: float) -> float:
+    """Level at which one window ending on 1-based day ``end_day`` is tested: ``alpha`` times
+    the day's spending share, split evenly over the ``min(max_window, end_day)`` windows that
+    end on it.
+
+    Example:
+        >>> f"{window_level(28, 7, 0.002):.3g}"
+        '1.84e-06'
+    """
+    return float(alpha * spending(end_day) / min(max_window, end_day))
+
+
 def scan_windows(counts: np.ndarray, planned: np.ndarray, *, max_window: int = 7,
                  watch_alpha: float = 0.05) -> WindowScan:
     """Scan every window of 1..``max_window`` consecutive days for a sample ratio mismatch.
 
-    Each window's summed counts are tested against its summed expected counts; the p-values of
-    all windows form one Holm family (Holm 1979), so looking at a long experiment does not
-    multiply false alarms. Non-overlapping windows are then chosen greedily by smallest raw
-    p-value, a common way to localise scan-statistic clusters (Kulldorff 1997, "A spatial scan
-    statistic", Communications in Statistics 26:1481-1496).
+    Each window's summed counts are tested against its summed expected counts (Pearson
+    chi-square); its adjusted p-value is ``p * k_t / gamma(t)`` (capped at 1) for a window
+    ending on day ``t`` (see the module docstring), so comparing it with ``alpha`` controls the
+    chance of any false flag over the experiment's whole life, under daily reading.
+    Non-overlapping windows are then chosen greedily by smallest raw p-value, a common way to
+    localise scan-statistic clusters (Kulldorff 1997, "A spatial scan statistic",
+    Communications in Statistics 26:1481-1496).
 
     Example:
         >>> counts = np.array([[5000, 5000]] * 10); counts[4] = [5000, 5600]
@@ -148,7 +188,9 @@ def scan_windows(counts: np.ndarray, planned: np.ndarray, *, max_window: int = 7
     obs = cum_obs[starts + lens] - cum_obs[starts]
     exp = cum_exp[starts + lens] - cum_exp[starts]
     statistic, p_value = chisquare_rows(obs, exp)
-    adjusted = holm_adjust(p_value)
+    end_day = starts + lens  # 1-based index of each window's last day
+    per_day = np.minimum(max_window, end_day)
+    adjusted = np.minimum(p_value * per_day / spending(end_day), 1.0)
     n_tests = int(np.count_nonzero(~np.isnan(p_value)))
     min_adjusted = float(np.nanmin(adjusted)) if n_tests else 1.0
     candidates = np.flatnonzero(np.nan_to_num(adjusted, nan=1.0) < watch_alpha)

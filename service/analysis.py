@@ -1,5 +1,5 @@
 """From stored rows to a stored diagnosis: load the table, run the detectors, keep a snapshot,
-derive alerts. Every function runs inside the caller's transaction."""
+derive incidents (and their findings). Every function runs inside the caller's transaction."""
 
 from __future__ import annotations
 
@@ -20,12 +20,13 @@ from detectors import (
     diagnose,
 )
 
-from .alerting import CORRECTED_DATA, AlertChanges, sync_alerts
+from .alerting import CORRECTED_DATA, AlertChanges
 from .campaigns import known_campaigns
 from .db.locks import hold_experiment_lock
 from .db.models import DiagnosisSnapshot, Experiment, Observation, utcnow
 from .db.observation_store import StagedUpload, read_observations
 from .http import entity_tag, json_safe
+from .incidents import IncidentChanges, sync_incidents
 from .notify.outbox import enqueue_for_changes
 
 NO_DATA = "no_data"
@@ -37,8 +38,9 @@ class Refresh:
 
     snapshot: DiagnosisSnapshot
     diagnosis: Diagnosis | None
-    alerts: AlertChanges
+    alerts: AlertChanges  # the findings (evidence of the incidents)
     new_version: bool
+    incidents: IncidentChanges
 
 
 def schedule_for(experiment: Experiment) -> AllocationSchedule:
@@ -119,7 +121,7 @@ def refresh_diagnosis(session: Session, experiment: Experiment, *,
                       now: dt.datetime | None = None, cause: str = CORRECTED_DATA,
                       staged: StagedUpload | None = None) -> Refresh:
     """Diagnose every stored row, keep the result as a new snapshot if it differs from the
-    latest one, and sync the alerts (``cause``: what changed, for resolution reasons).
+    latest one, and sync the incidents (``cause``: what changed, for resolution reasons).
     Takes the experiment's write lock unless the transaction holds it already
     (:mod:`service.db.locks`): two workers never diagnose one experiment at once.
     ``staged``: the upload that this transaction just made, if any (see :func:`load_table`)."""
@@ -153,11 +155,11 @@ def refresh_diagnosis(session: Session, experiment: Experiment, *,
     else:
         assert latest is not None
         snapshot = latest
-    changes = sync_alerts(session, experiment, diagnosis, diagnosis_version=snapshot.version,
-                          now=now, cause=cause)
-    # Same transaction as the alerts (outbox): delivered later by the notification worker.
+    changes = sync_incidents(session, experiment, diagnosis,
+                             diagnosis_version=snapshot.version, now=now, cause=cause)
+    # Same transaction as the incidents (outbox): delivered later by the notification worker.
     enqueue_for_changes(session, experiment, changes, now=now)
-    return Refresh(snapshot, diagnosis, changes, new_version)
+    return Refresh(snapshot, diagnosis, changes.evidence, new_version, changes)
 
 
 __all__ = ["NO_DATA", "InputError", "Refresh", "SnapshotSummary", "latest_snapshot",

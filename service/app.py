@@ -34,6 +34,7 @@ from .routers import (
     diagnosis,
     experiments,
     health,
+    incidents,
     observations,
     problem_types,
     reweight,
@@ -53,8 +54,8 @@ Authenticate with `Authorization: Bearer TOKEN`; scopes are read < write < admin
 """
 
 ROUTERS = (health.router, experiments.router, observations.router, diagnosis.router,
-           reweight.router, campaigns.router, sensitivity.router, alerts.router,
-           deliveries.router, tokens.router, problem_types.router, pages_router)
+           reweight.router, campaigns.router, sensitivity.router, incidents.router,
+           alerts.router, deliveries.router, tokens.router, problem_types.router, pages_router)
 # Models referenced from hand-written OpenAPI fragments (bodies parsed by the service itself).
 DOCUMENTED_MODELS: list[type[BaseModel]] = [ProblemDetails, *observations.DOCUMENTED_MODELS]
 _PROBLEM_CONTENT = {PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/ProblemDetails"}}}

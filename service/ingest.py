@@ -18,17 +18,16 @@ from msgspec import UNSET
 from pydantic import TypeAdapter, ValidationError
 from sqlalchemy.orm import Session
 
-from detectors.data import STAT_FIELDS, metric_columns, records_to_frame, validate_frame
+from detectors.data import STAT_FIELDS, records_to_frame, validate_frame
 from detectors.errors import InputError, Problem
 
-from .csvio import read_observations_csv
+from .csvio import read_csv_rows
 from .db.models import Experiment, utcnow
 from .db.observation_store import ObservationColumns, StagedUpload, upsert_observations
 from .gc_pause import paused_garbage_collection
 from .json_guard import JSONBodyError, find_bad_string, format_path, strict_loads
 from .schemas.observations import ObservationIn, PlainBatch, rows_plainly_conform
 
-BASE_COLUMNS = ("date", "arm", "source", "entered")
 _ROWS_ADAPTER: TypeAdapter[list[ObservationIn]] = TypeAdapter(list[ObservationIn])
 
 
@@ -51,6 +50,7 @@ class ParsedBody:
 
     frame: pd.DataFrame
     problems: list[Problem]
+    lines: np.ndarray | None = None  # CSV: the file line of each row (header = line 1)
 
 
 def parse_json_body(body: bytes, max_rows: int) -> ParsedBody:
@@ -153,20 +153,14 @@ def _plain_rows(body: bytes, max_rows: int) -> pd.DataFrame | None:
 
 
 def parse_csv_body(body: bytes, max_rows: int) -> ParsedBody:
-    """The CSV rows as a frame (text, or numbers parsed for a plain file); the header may only
-    name known columns."""
-    frame = read_observations_csv(body)
-    if len(frame) > max_rows:
-        raise TooManyRowsError(len(frame), max_rows)
-    known = set(BASE_COLUMNS)
-    names = metric_columns(frame.columns)
-    known.update(f"{name}.{stat}" for name in names for stat in STAT_FIELDS)
-    unknown = [c for c in frame.columns if c not in known]
-    if unknown:
-        raise InputError([Problem("header", f"unknown column {c!r}: columns are date, arm, "
-                                  "source, entered and NAME.n, NAME.sum, NAME.sum_sq per "
-                                  "metric") for c in unknown])
-    return ParsedBody(frame, [])
+    """The CSV rows as a frame (text, or numbers parsed for a plain file) with each row's file
+    line; the header may only name known columns."""
+    rows = read_csv_rows(body)
+    if len(rows.frame) > max_rows:
+        raise TooManyRowsError(len(rows.frame), max_rows)
+    if rows.unused:
+        raise InputError(list(rows.unused))
+    return ParsedBody(rows.frame, [], rows.lines)
 
 
 def validate_rows(parsed: ParsedBody, experiment: Experiment, *, today: dt.date,

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import logging
 import re
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
 from fastapi import FastAPI, Request
@@ -31,8 +31,8 @@ PROBLEM_TYPES: dict[str, tuple[str, str]] = {
     "invalid-input": (
         "Invalid input",
         "The request is well-formed but some values cannot be accepted. `errors` lists each "
-        "offending row (0-based position in the request), field and reason; nothing was "
-        "written."),
+        "offending row (0-based position in the request; for CSV also the file `line` it "
+        "starts on, the header being line 1), field and reason; nothing was written."),
     "malformed-body": (
         "Malformed request body",
         "The body could not be parsed (invalid JSON or CSV syntax). Nothing was written."),
@@ -114,30 +114,38 @@ def problem_response(request: Request, status: int, detail: str, *, slug: str | 
                         media_type=PROBLEM_MEDIA_TYPE)
 
 
-def problems_as_errors(problems: Iterable[Problem], *, csv_lines: bool = False
-                       ) -> list[dict[str, Any]]:
-    """``{row, field, message}`` items; CSV bodies also give the file line (header = line 1)."""
+def problems_as_errors(problems: Iterable[Problem], *, csv_lines: bool = False,
+                       lines: Sequence[int] | None = None) -> list[dict[str, Any]]:
+    """``{row, field, message}`` items; CSV bodies also give the file ``line`` of the row
+    (header = line 1): from ``lines`` (the reader's, per row) when given, else row + 2."""
     items: list[dict[str, Any]] = []
     for problem in problems:
         item = problem.as_dict()
         if csv_lines and problem.row is not None:
-            item["line"] = problem.row + 2
+            item["line"] = (int(lines[problem.row]) if lines is not None
+                            and problem.row < len(lines) else problem.row + 2)
         items.append(item)
     return items
 
 
 def input_error_response(request: Request, error: InputError, *, csv_lines: bool = False,
-                         detail: str | None = None) -> JSONResponse:
-    errors = problems_as_errors(error.problems, csv_lines=csv_lines)
+                         detail: str | None = None, lines: Sequence[int] | None = None
+                         ) -> JSONResponse:
+    errors = problems_as_errors(error.problems, csv_lines=csv_lines, lines=lines)
     if isinstance(error, UndefinedEstimateError):
         return problem_response(
             request, 422, detail or str(error.problems[0].message), slug="undefined-estimate",
             errors=errors, cohort=error.cohort, arm=error.arm)
+    return problem_response(request, 422, detail or invalid_input_detail(errors),
+                            errors=errors)
+
+
+def invalid_input_detail(errors: Sequence[Mapping[str, Any]]) -> str:
+    """The ``detail`` of an invalid-input problem: how many problems, in how many rows."""
     rows = {e["row"] for e in errors if e["row"] is not None}
     summary = (f"{len(errors)} problem(s) in {len(rows)} row(s)" if rows
                else f"{len(errors)} problem(s)")
-    return problem_response(request, 422, detail or f"The input was rejected: {summary}; "
-                            "nothing was written.", errors=errors)
+    return f"The input was rejected: {summary}; nothing was written."
 
 
 def _base_url(request: Request) -> str:

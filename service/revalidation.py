@@ -24,7 +24,7 @@ import re
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import Engine, Select, bindparam, select
+from sqlalchemy import Engine, Select, bindparam, func, select
 from sqlalchemy.exc import SQLAlchemyError
 from starlette.datastructures import Headers
 from starlette.routing import BaseRoute
@@ -51,8 +51,10 @@ def _latest_tag(tag_column: Any) -> Select[tuple[int, str]]:
             .order_by(DiagnosisSnapshot.version.desc()).limit(1))
 
 
-# Built once: polls run them many times a second.
-_LATEST_TAG = {"diagnosis": _latest_tag(DiagnosisSnapshot.etag),
+# Built once: polls run them many times a second. The diagnosis is served under the tag that
+# covers its incidents' lifecycle fields when it has any (service.incidents.served_document).
+_LATEST_TAG = {"diagnosis": _latest_tag(func.coalesce(DiagnosisSnapshot.served_etag,
+                                                      DiagnosisSnapshot.etag)),
                "series": _latest_tag(DiagnosisSnapshot.series_etag)}
 # PostgreSQL: the latest tag and the presented token's row in one round trip.
 _TAG_AND_TOKEN = {document: (
@@ -61,7 +63,8 @@ _TAG_AND_TOKEN = {document: (
     f"LEFT JOIN LATERAL (SELECT version, {column} AS tag FROM {DiagnosisSnapshot.__tablename__}"
     f" WHERE experiment_id = %(experiment_id)s ORDER BY version DESC LIMIT 1) AS latest ON true "
     f"LEFT JOIN {ApiToken.__tablename__} AS token ON token.token_hash = %(digest)s")
-    for document, column in (("diagnosis", "etag"), ("series", "series_etag"))}
+    for document, column in (("diagnosis", "COALESCE(served_etag, etag)"),
+                             ("series", "series_etag"))}
 
 
 @dataclass(frozen=True)

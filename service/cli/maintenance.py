@@ -2,10 +2,10 @@
 
 For nightly runs and after an upgrade of the detectors: every selected experiment is
 diagnosed again from its stored rows, exactly as after an upload. A result that differs from
-the latest snapshot becomes a new diagnosis version and may open or resolve alerts (and queue
-their notifications); an identical one changes nothing. Each process has its own engine and
-takes the experiment's write lock (``service.db.locks``), so a re-analysis never races an
-upload handled by a running service.
+the latest snapshot becomes a new diagnosis version and may open, update or resolve
+incidents (and queue their notifications); an identical one changes nothing. Each process has
+its own engine and takes the experiment's write lock (``service.db.locks``), so a re-analysis
+never races an upload handled by a running service.
 """
 
 from __future__ import annotations
@@ -48,7 +48,7 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
         "reanalyze", help="re-run the diagnosis of stored experiments",
         description="Diagnose experiments again from their stored rows with the installed "
                     "detectors (nightly, or after an upgrade). A changed result becomes a new "
-                    "diagnosis version and opens or resolves alerts, with notifications, as "
+                    "diagnosis version and opens or resolves incidents, with notifications, as "
                     "an upload would; experiments never diagnosed are skipped. Works on the "
                     "database named by INRUSH_DATABASE_URL, also while the service runs. "
                     "Exit status 1 if any experiment failed.")
@@ -142,8 +142,8 @@ def reanalyze_one(database: Database, experiment_id: str) -> Outcome:
             snapshot = refresh.snapshot
             return Outcome(experiment_id, NEW_VERSION if refresh.new_version else UNCHANGED,
                            time.perf_counter() - started, version=snapshot.version,
-                           status=snapshot.status, opened=len(refresh.alerts.opened),
-                           resolved=len(refresh.alerts.resolved))
+                           status=snapshot.status, opened=len(refresh.incidents.opened),
+                           resolved=len(refresh.incidents.resolved))
     except Exception as error:  # one experiment's failure must not stop the others
         return Outcome(experiment_id, FAILED, time.perf_counter() - started,
                        error=f"{type(error).__name__}: {error}".strip())
@@ -159,14 +159,14 @@ def summary(outcomes: Iterable[Outcome], *, jobs: int, seconds: float) -> str:
         f"re-analysed {len(outcomes)} experiment{'s' * (len(outcomes) != 1)} in {seconds:.1f} s "
         f"with {jobs} process{'es' * (jobs != 1)}: {count[NEW_VERSION]} new diagnosis "
         f"version{'s' * (count[NEW_VERSION] != 1)}, {count[UNCHANGED]} unchanged, "
-        f"{count[SKIPPED]} skipped (never diagnosed), {count[FAILED]} failed; alerts opened "
+        f"{count[SKIPPED]} skipped (never diagnosed), {count[FAILED]} failed; incidents opened "
         f"{sum(o.opened for o in outcomes)}, resolved {sum(o.resolved for o in outcomes)}"]
     if diagnosed:
         slowest = max(diagnosed, key=lambda o: o.seconds)
         lines.append(f"slowest: {slowest.experiment_id} ({slowest.seconds * 1000:.0f} ms)")
     for o in outcomes:
         if o.state == NEW_VERSION:
-            lines.append(f"  {o.experiment_id}: new version {o.version} ({o.status}), alerts "
+            lines.append(f"  {o.experiment_id}: new version {o.version} ({o.status}), incidents "
                          f"opened {o.opened}, resolved {o.resolved}")
     failed = [o for o in outcomes if o.state == FAILED]
     if failed:

@@ -120,11 +120,16 @@ class DiagnosisSnapshot(Base):
     series: Mapped[dict[str, Any] | None] = mapped_column(PortableJSON)
     etag: Mapped[str] = mapped_column(String(64))
     series_etag: Mapped[str] = mapped_column(String(64))
+    # The tag of the document as served: ``document`` with the stored fields of its incidents
+    # merged in (service.incidents); it changes when an incident's lifecycle does. ``None``:
+    # the document is served as stored, under ``etag``.
+    served_etag: Mapped[str | None] = mapped_column(String(64), default=None)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
 
 
 class Alert(Base):
-    """A finding of the diagnosis, deduplicated by ``(experiment, kind, key)``."""
+    """A finding of the diagnosis, deduplicated by ``(experiment, kind, key)``: the evidence
+    of an incident (``service.db.incident_models``)."""
 
     __tablename__ = "alerts"
     __table_args__ = (
@@ -135,6 +140,11 @@ class Alert(Base):
     id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
     experiment_id: Mapped[str] = mapped_column(
         ForeignKey("experiments.id", ondelete="CASCADE"), index=True)
+    # The incident this finding is evidence of (None: outcome context, or history from
+    # before incidents). Incidents go only with their experiment, which takes its findings
+    # along, so the key needs no ON DELETE action.
+    incident_id: Mapped[int | None] = mapped_column(
+        ForeignKey("incidents.id"), index=True, default=None)
     kind: Mapped[str] = mapped_column(String(32))
     key: Mapped[str] = mapped_column(String(200))
     status: Mapped[str] = mapped_column(String(16))  # open | acknowledged | resolved

@@ -1,4 +1,4 @@
-"""Notification outbox: one row per alert event to deliver, and every delivery attempt.
+"""Notification outbox: one row per incident event to deliver, and every delivery attempt.
 
 Rows are written in the transaction that changes the alert (transactional outbox), so an
 alert is never committed without its notification and the write never waits on the receiver.
@@ -19,15 +19,18 @@ OUTBOX_STATUSES = (PENDING, DELIVERING, DELIVERED, FAILED)
 
 
 class Outbox(Base):
-    """An alert event waiting for (or done with) delivery to the experiment's webhook."""
+    """An incident event waiting for (or done with) delivery to the experiment's webhook."""
 
     __tablename__ = "notify_outbox"
     __table_args__ = (Index("ix_notify_outbox_status_next_attempt_at", "status",
                             "next_attempt_at"),)
 
     id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    alert_id: Mapped[int] = mapped_column(ForeignKey("alerts.id", ondelete="CASCADE"),
-                                          index=True)
+    # Notifications are sent per incident; rows queued before incidents name an alert.
+    alert_id: Mapped[int | None] = mapped_column(
+        ForeignKey("alerts.id", ondelete="CASCADE"), index=True, default=None)
+    incident_id: Mapped[int | None] = mapped_column(
+        ForeignKey("incidents.id", ondelete="CASCADE"), index=True, default=None)
     experiment_id: Mapped[str] = mapped_column(
         ForeignKey("experiments.id", ondelete="CASCADE"), index=True)
     event_type: Mapped[str] = mapped_column(String(32))

@@ -24,6 +24,7 @@ from ..campaigns import campaign_document, stored_campaigns
 from ..db.models import Alert, Experiment
 from ..db.session import get_session
 from ..http import json_safe
+from ..incidents import served_document
 from ..routers.alerts import alert_out
 from ..routers.common import base_url
 from ..routers.reweight import flagged_dates
@@ -132,7 +133,8 @@ def experiment_page(experiment_id: str, request: Request,
         return HTMLResponse(render_not_found(experiment_id), status_code=404,
                             headers=PAGE_HEADERS)
     snapshot = latest_snapshot(session, experiment_id)
-    document = snapshot.document if snapshot else None
+    # The incidents with their stored lifecycle fields, as the diagnosis endpoint serves them.
+    document = served_document(session, snapshot)[0] if snapshot else None
     series = snapshot.series if snapshot else None
     alerts = session.scalars(select(Alert).where(Alert.experiment_id == experiment_id,
                                                  Alert.status.in_(UNRESOLVED))
@@ -148,6 +150,7 @@ def experiment_page(experiment_id: str, request: Request,
     base = base_url(request)
     links = {"diagnosis (JSON)": f"{base}/v1/experiments/{experiment_id}/diagnosis",
              "daily series (JSON)": f"{base}/v1/experiments/{experiment_id}/series",
+             "incidents (JSON)": f"{base}/v1/experiments/{experiment_id}/incidents",
              "alerts (JSON)": f"{base}/v1/alerts?experiment={experiment_id}",
              "campaigns (JSON)": f"{base}/v1/experiments/{experiment_id}/campaigns",
              "sensitivity (JSON)": f"{base}/v1/experiments/{experiment_id}/sensitivity"}

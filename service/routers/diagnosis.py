@@ -15,6 +15,7 @@ from ..db.models import DiagnosisSnapshot
 from ..db.session import get_session
 from ..http import JSON_MEDIA_TYPE, canonical_json, etag_matches
 from ..http_cache import REVALIDATE
+from ..incidents import served_document
 from ..problems import ProblemError
 from ..schemas.common import problem_responses
 from ..schemas.diagnosis import DiagnosisDocument, SeriesDocument, SnapshotList, SnapshotOut
@@ -33,13 +34,18 @@ def get_diagnosis(experiment_id: str, session: Session = Depends(get_session),
                   version: Annotated[int | None, Query(
                       ge=1, description="an earlier diagnosis (default: the latest)")] = None,
                   if_none_match: Annotated[str | None, Header()] = None) -> Response:
-    """The latest diagnosis document, with an ETag; `If-None-Match` answers 304 when current."""
+    """The latest diagnosis document, with an ETag; `If-None-Match` answers 304 when current.
+
+    Each of its `incidents` carries the stored incident's `id`, `status`, `opened_at`,
+    `acknowledged_at`, `resolved_at`, `resolution` and `explained_by`; the ETag changes when
+    any of them does. An earlier `version` is served as it was computed, without them."""
     # A current If-None-Match of the latest diagnosis is answered before routing
     # (service.revalidation); one that reaches here is checked against the loaded snapshot.
     snapshot = _snapshot(session, experiment_id, version)
-    if snapshot.document is None:
+    document, etag = served_document(session, snapshot)
+    if document is None:
         raise _no_diagnosis(experiment_id)
-    return _conditional(snapshot.document, snapshot.etag, snapshot.version, if_none_match)
+    return _conditional(document, etag, snapshot.version, if_none_match)
 
 
 @router.get("/series", response_model=SeriesDocument,

@@ -82,9 +82,11 @@ def _write(request: Request, session: Session, experiment_id: str, body: bytes,
            is_csv: bool) -> Response:
     settings: Settings = request.app.state.settings
     experiment = get_experiment(session, experiment_id)
+    lines = None  # CSV: the file line of each row, for the problem document
     try:
         parsed = (parse_csv_body(body, settings.max_rows) if is_csv
                   else parse_json_body(body, settings.max_rows))
+        lines = parsed.lines
         rows = validate_rows(parsed, experiment, today=utcnow().date(),
                              future_days=settings.future_days)
     except MalformedBodyError as error:
@@ -94,7 +96,9 @@ def _write(request: Request, session: Session, experiment_id: str, body: bytes,
         raise ProblemError(413, f"The request has {error.count} rows; at most {error.limit} "
                            "are accepted per request. Split the upload.") from None
     except InputError as error:
-        return input_error_response(request, error, csv_lines=is_csv)
+        reader_lines = getattr(error, "lines", None)  # the CSV reader's own problems
+        return input_error_response(request, error, csv_lines=is_csv,
+                                    lines=lines if reader_lines is None else reader_lines)
 
     experiment = lock_experiment(session, experiment_id)
     staged = upsert_rows(session, experiment, rows)

@@ -19,7 +19,9 @@ class DeliveryAttemptOut(BaseModel):
 class DeliveryOut(BaseModel):
     id: int
     event_id: str = Field(description="the webhook-id header: the same on every retry")
-    event_type: str = Field(description="alert.opened | alert.resolved")
+    event_type: str = Field(description="incident.opened | incident.updated | "
+                                        "incident.resolved (alert.opened | alert.resolved "
+                                        "before incidents)")
     status: str = Field(description="pending | delivering | delivered | failed")
     attempts: int
     next_attempt_at: dt.datetime | None = Field(description="when the next try is due")
@@ -30,5 +32,11 @@ class DeliveryOut(BaseModel):
 
 class DeliveryList(BaseModel):
     alert: int
+    webhook_configured: bool = Field(description="whether the experiment has a webhook now")
+    items: list[DeliveryOut]
+
+
+class IncidentDeliveryList(BaseModel):
+    incident: int
     webhook_configured: bool = Field(description="whether the experiment has a webhook now")
     items: list[DeliveryOut]

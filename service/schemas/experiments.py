@@ -59,7 +59,7 @@ class AllocationStep(BaseModel):
 
 
 class NotifyIn(BaseModel):
-    """Where to send alert notifications; the secret signs them and is never returned."""
+    """Where to send incident notifications; the secret signs them and is never returned."""
 
     model_config = ConfigDict(extra="forbid")
 

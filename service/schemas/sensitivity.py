@@ -43,7 +43,10 @@ class SensitivityOut(BaseModel):
     overall_alpha: float = Field(description="alert level of the anytime-valid whole-period "
                                              "test")
     max_window: int = Field(description="longest window the diagnosis scans")
-    family_size: int = Field(description="windows the Holm adjustment runs over")
+    family_size: int = Field(description="the per-window level as an equivalent number of "
+                             "Bonferroni-split windows (alpha / level)")
+    level: float = Field(description="level at which the window ending today is tested: the "
+                         "scan's lifetime alpha spent on that day and split over its windows")
     baseline_units_per_day: float
     weights: dict[str, float]
     arms: list[ArmSensitivity]

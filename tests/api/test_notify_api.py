@@ -1,5 +1,5 @@
 """Notifications through the HTTP API: registration checks, upload -> outbox -> delivery, and
-``GET /v1/alerts/{id}/deliveries``."""
+``GET /v1/incidents/{id}/deliveries``."""
 
 from __future__ import annotations
 
@@ -13,11 +13,20 @@ from apihelpers import EXPERIMENT, assert_problem, corrected_demo_csv, demo_csv_
 from fastapi import FastAPI
 from notify_receiver import running_receiver
 
+from service import analysis
 from service.notify import signing
 from service.notify.settings import NotifySettings
 from service.notify.worker import NotifyWorker
+from tests.episode_fixtures import with_episodes
 
 SECRET = "whsec_bGFya3NwdXItdHJhaWxzLWtleQ=="
+
+
+@pytest.fixture(autouse=True)
+def episodes(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Diagnoses with episodes (the demo's campaign days form one)."""
+    real = analysis.diagnose
+    monkeypatch.setattr(analysis, "diagnose", lambda *a, **k: with_episodes(real(*a, **k)))
 
 
 def deliver_all(app: FastAPI) -> int:
@@ -56,32 +65,30 @@ def test_upload_queues_and_the_worker_delivers(client: Any, app: FastAPI,
         assert response.status_code == 201, response.text
         upload_csv(client, demo_csv_text())
         assert receiver.requests == []  # the upload did not wait on the receiver
-        alerts = client.get("/v1/alerts", params={"experiment": "route-cards"}).json()["items"]
-        assert alerts
-        sent = deliver_all(app)
-        assert sent == len(alerts) and len(receiver.requests) == sent
+        [incident] = client.get("/v1/incidents",
+                                params={"experiment": "route-cards"}).json()["items"]
+        # Several findings stand behind the one episode; one message is sent for it.
+        assert len(client.get("/v1/alerts", params={"experiment": "route-cards"})
+                   .json()["items"]) > 1
+        assert deliver_all(app) == 1 and len(receiver.requests) == 1
         retried = receiver.requests[0].headers["webhook-id"]
         time.sleep(0.05)
         # The 500 is retried later per the backoff schedule, not in this pass.
         assert deliver_all(app) == 0
-    for request in receiver.requests:
-        assert signing.verify(SECRET, request.headers, request.body)
-        body = json.loads(request.body)
-        assert body["type"] == "alert.opened"
-        assert body["data"]["experiment"]["id"] == "route-cards"
-    failed_first = next(a for a in alerts if any(
-        d["event_id"] == retried for d in client.get(
-            f"/v1/alerts/{a['id']}/deliveries").json()["items"]))
-    listing = client.get(f"/v1/alerts/{failed_first['id']}/deliveries").json()
-    assert listing["webhook_configured"] is True
+    [request] = receiver.requests
+    assert signing.verify(SECRET, request.headers, request.body)
+    body = json.loads(request.body)
+    assert body["type"] == "incident.opened"
+    assert body["data"]["experiment"]["id"] == "route-cards"
+    assert body["data"]["incident"]["id"] == incident["id"]
+    listing = client.get(f"/v1/incidents/{incident['id']}/deliveries").json()
+    assert listing["webhook_configured"] is True and listing["incident"] == incident["id"]
     [delivery] = listing["items"]
+    assert delivery["event_id"] == retried and delivery["event_type"] == "incident.opened"
     assert delivery["status"] == "pending" and delivery["attempts"] == 1
     assert delivery["next_attempt_at"] is not None
     assert delivery["history"][0]["status_code"] == 500
     assert delivery["history"][0]["error"] == "answered 500"
-    others = [a for a in alerts if a["id"] != failed_first["id"]]
-    other = client.get(f"/v1/alerts/{others[0]['id']}/deliveries").json()["items"][0]
-    assert other["status"] == "delivered" and other["history"][0]["status_code"] == 200
 
 
 def test_corrected_data_sends_resolutions(client: Any, app: FastAPI,
@@ -96,10 +103,10 @@ def test_corrected_data_sends_resolutions(client: Any, app: FastAPI,
         upload_csv(client, corrected_demo_csv())
         deliver_all(app)
     types = [json.loads(r.body)["type"] for r in receiver.requests]
-    assert types[:opened] == ["alert.opened"] * opened
-    resolved = [json.loads(r.body) for r in receiver.requests[opened:]]
-    assert resolved and all(b["type"] == "alert.resolved" for b in resolved)
-    assert all(b["data"]["alert"]["resolution_reason"] for b in resolved)
+    assert opened == 1 and types == ["incident.opened", "incident.resolved"]
+    resolved = json.loads(receiver.requests[1].body)
+    assert resolved["data"]["incident"]["resolution"].startswith(
+        "corrected data no longer supports it")
     ids = [r.headers["webhook-id"] for r in receiver.requests]
     assert len(ids) == len(set(ids))
 
@@ -109,7 +116,9 @@ def test_deliveries_need_read_scope_and_an_existing_alert(anonymous: Any,
     writer = {"Authorization": f"Bearer {token_for('write')}"}
     reader = {"Authorization": f"Bearer {token_for('read')}"}
     assert_problem(anonymous.get("/v1/alerts/1/deliveries"), 401)
+    assert_problem(anonymous.get("/v1/incidents/1/deliveries"), 401)
     assert_problem(anonymous.get("/v1/alerts/999/deliveries", headers=reader), 404)
+    assert_problem(anonymous.get("/v1/incidents/999/deliveries", headers=reader), 404)
     anonymous.post("/v1/experiments", json=EXPERIMENT, headers=writer)
     response = anonymous.put("/v1/experiments/route-cards/observations",
                              content=demo_csv_text().encode(),
@@ -119,6 +128,10 @@ def test_deliveries_need_read_scope_and_an_existing_alert(anonymous: Any,
     listing = anonymous.get(f"/v1/alerts/{alert['id']}/deliveries", headers=reader)
     assert listing.status_code == 200
     assert listing.json() == {"alert": alert["id"], "webhook_configured": False, "items": []}
+    incident = anonymous.get("/v1/incidents", headers=reader).json()["items"][0]
+    listing = anonymous.get(f"/v1/incidents/{incident['id']}/deliveries", headers=reader)
+    assert listing.json() == {"incident": incident["id"], "webhook_configured": False,
+                              "items": []}
 
 
 def test_the_app_runs_the_worker_in_its_lifespan(settings: Any,
@@ -136,7 +149,8 @@ def test_the_app_runs_the_worker_in_its_lifespan(settings: Any,
             client.post("/v1/experiments", json={**EXPERIMENT, "notify": {
                 "webhook_url": f"{receiver.url}/hook", "secret": SECRET}})
             upload_csv(client, demo_csv_text())
-            expected = len(client.get("/v1/alerts").json()["items"])
+            expected = len(client.get("/v1/incidents").json()["items"])
+            assert expected == 1
             deadline = time.monotonic() + 20
             while len(receiver.requests) < expected and time.monotonic() < deadline:
                 time.sleep(0.05)

@@ -14,19 +14,29 @@ import pytest
 from notify_receiver import running_receiver
 from sqlalchemy import func, select
 
-from service.alerting import AlertChanges
+from service import analysis
 from service.analysis import refresh_diagnosis
-from service.db.models import Alert, AlertEvent, Experiment, Observation, utcnow
+from service.db.incident_models import Incident, IncidentEvent
+from service.db.models import Experiment, Observation, utcnow
 from service.db.notify_models import DELIVERED, FAILED, PENDING, DeliveryAttempt, Outbox
 from service.db.session import Database
 from service.demo import scenario
+from service.incidents import IncidentChanges
 from service.notify import signing
 from service.notify.outbox import enqueue_for_changes
 from service.notify.settings import NotifySettings
 from service.notify.worker import LOST_LEASE, NotifyWorker
+from tests.episode_fixtures import with_episodes
 
 SECRET = "whsec_" + "bGFya3NwdXItdHJhaWxzLWtleQ=="
 FAST = (0.0, 0.01, 0.01)  # a short retry schedule so the tests do not wait hours
+
+
+@pytest.fixture(autouse=True)
+def episodes(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Diagnoses with episodes (the demo's campaign days form one)."""
+    real = analysis.diagnose
+    monkeypatch.setattr(analysis, "diagnose", lambda *a, **k: with_episodes(real(*a, **k)))
 
 
 @pytest.fixture
@@ -51,8 +61,9 @@ def worker(database: Database, **kwargs: Any) -> NotifyWorker:
 
 
 def seed(database: Database, webhook_url: str | None, secret: str | None = SECRET,
-         *, commit: bool = True) -> tuple[AlertChanges, list[Outbox]]:
-    """The demo experiment with its data, diagnosed, alerts synced and notifications queued."""
+         *, commit: bool = True) -> tuple[IncidentChanges, list[Outbox]]:
+    """The demo experiment with its data, diagnosed, incidents synced and notifications
+    queued."""
     frame = pd.read_csv(scenario.CSV_PATH)
     with database.sessions() as session:
         experiment = Experiment(id=scenario.EXPERIMENT_ID, title=scenario.TITLE,
@@ -72,12 +83,12 @@ def seed(database: Database, webhook_url: str | None, secret: str | None = SECRE
         refresh = refresh_diagnosis(session, experiment)  # queues in the same transaction
         queued = list(session.scalars(select(Outbox).order_by(Outbox.id)))
         # Queuing again for the same changes adds nothing: event ids are unique.
-        assert enqueue_for_changes(session, experiment, refresh.alerts) == []
+        assert enqueue_for_changes(session, experiment, refresh.incidents) == []
         if commit:
             session.commit()
         else:
             session.rollback()
-    return refresh.alerts, queued
+    return refresh.incidents, queued
 
 
 def rows(database: Database) -> list[Outbox]:
@@ -91,20 +102,25 @@ def attempts(database: Database, outbox_id: int) -> list[DeliveryAttempt]:
             DeliveryAttempt.outbox_id == outbox_id).order_by(DeliveryAttempt.id)))
 
 
-def test_enqueue_shares_the_alert_transaction(database: Database,
+def test_enqueue_shares_the_incident_transaction(database: Database,
                                               monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setenv("INRUSH_PUBLIC_URL", "https://inrush.larkspur.example/")
     seed(database, "https://hooks.larkspur.example/inrush", commit=False)
     with database.sessions() as session:
-        assert session.scalar(select(func.count()).select_from(Alert)) == 0
+        assert session.scalar(select(func.count()).select_from(Incident)) == 0
         assert session.scalar(select(func.count()).select_from(Outbox)) == 0
     changes, queued = seed(database, "https://hooks.larkspur.example/inrush")
-    assert len(queued) == len(changes.opened) > 0
+    # One campaign, one episode, one message (not one per finding behind it).
+    assert len(queued) == len(changes.opened) == 1
     stored = rows(database)
-    assert {r.event_type for r in stored} == {"alert.opened"}
+    assert {r.event_type for r in stored} == {"incident.opened"}
     assert all(r.status == PENDING and r.attempts == 0 for r in stored)
-    assert len({r.event_id for r in stored}) == len(stored)
-    kinds = {r.payload["data"]["alert"]["kind"] for r in stored}
+    incident = stored[0].payload["data"]["incident"]
+    campaign = [(scenario.START + dt.timedelta(days=d)).isoformat()
+                for d in scenario.CAMPAIGN_DAYS]
+    assert (incident["shape"], incident["arm"], incident["days"]) == ("inflow", "cards",
+                                                                     campaign)
+    kinds = {e["kind"] for e in stored[0].payload["data"]["detail"]["evidence"]}
     # The demo's whole-period ratio stays above the alert level; the campaign days do not.
     assert {"skewed_day", "skewed_source"} <= kinds
     assert stored[0].payload["data"]["links"]["status_page"] == (
@@ -119,7 +135,7 @@ def test_no_webhook_no_notification_and_no_repeat_without_change(database: Datab
         assert experiment is not None
         experiment.webhook_url = "https://hooks.larkspur.example/inrush"
         again = refresh_diagnosis(session, experiment)
-        assert again.alerts.opened == [] and again.alerts.resolved == []
+        assert not again.incidents
         session.commit()
     assert rows(database) == []
 
@@ -141,9 +157,9 @@ def test_resolution_is_notified_with_its_own_event_id(database: Database) -> Non
         refresh_diagnosis(session, experiment)
         session.commit()
     resolved = [r for r in rows(database) if r.event_id not in opened_ids]
-    assert resolved and {r.event_type for r in resolved} == {"alert.resolved"}
+    assert len(resolved) == 1 and resolved[0].event_type == "incident.resolved"
     assert not opened_ids & {r.event_id for r in resolved}
-    assert all(r.payload["data"]["alert"]["status"] == "resolved" for r in resolved)
+    assert resolved[0].payload["data"]["incident"]["status"] == "resolved"
 
 
 def test_worker_delivers_signed_messages_once(database: Database) -> None:
@@ -226,11 +242,12 @@ def test_concurrent_workers_deliver_each_event_once(database: Database) -> None:
     with running_receiver() as receiver:
         _, queued = seed(database, f"{receiver.url}/hook")
         with database.sessions.begin() as session:  # more messages to race for
-            alert_id = queued[0].alert_id
+            incident_id = queued[0].incident_id
             for n in range(12):
-                session.add(Outbox(alert_id=alert_id, experiment_id=scenario.EXPERIMENT_ID,
-                                   event_type="alert.opened", event_id=f"race-{n}",
-                                   payload={"type": "alert.opened", "id": f"race-{n}"},
+                session.add(Outbox(incident_id=incident_id,
+                                   experiment_id=scenario.EXPERIMENT_ID,
+                                   event_type="incident.opened", event_id=f"race-{n}",
+                                   payload={"type": "incident.opened", "id": f"race-{n}"},
                                    status=PENDING, attempts=0, next_attempt_at=utcnow()))
         workers = [worker(database, name=f"w{i}") for i in range(3)]
         threads = [threading.Thread(target=w.run_once) for w in workers]
@@ -276,11 +293,11 @@ def test_removed_webhook_fails_the_message(database: Database) -> None:
     assert {r.status for r in rows(database)} == {FAILED}
 
 
-def test_transitions_have_alert_events(database: Database) -> None:
+def test_transitions_have_incident_events(database: Database) -> None:
     _, queued = seed(database, "https://hooks.larkspur.example/inrush")
     with database.sessions() as session:
         for row in queued:
             transition = int(row.event_id.rsplit("-t", 1)[1])
-            event = session.get(AlertEvent, transition)
-            assert event is not None and event.alert_id == row.alert_id
+            event = session.get(IncidentEvent, transition)
+            assert event is not None and event.incident_id == row.incident_id
             assert event.action == "opened"

@@ -62,9 +62,9 @@ def test_the_inflow_answered_has_the_stated_power(client: Any, experiment: Any) 
     answer = client.get(URL, params={"days": 3}).json()
     # Independent check with scipy: Pearson's statistic on the 3-day window is noncentral
     # chi-square with noncentrality K x^2 (1 - w) / ((N + x) w) (Cohen 1988, ch. 7); at the
-    # answered inflow x the Bonferroni-level test (Holm's first step) has 80% power.
+    # answered inflow x the window test at the answered level has 80% power.
     baseline = answer["baseline_units_per_day"]
-    level = answer["alpha"] / answer["family_size"]
+    level = answer["level"]
     for arm in answer["arms"]:
         x, w = arm["units_per_day"], answer["weights"][arm["arm"]]
         noncentrality = 3 * x * x * (1 - w) / ((baseline + x) * w)

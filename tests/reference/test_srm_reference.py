@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy import stats
+from scipy import special, stats
 from scipy.special import betaln, gammaln
 from statsmodels.stats.multitest import multipletests
 
@@ -126,9 +126,11 @@ def test_holm_ignores_nan_and_keeps_shape() -> None:
     np.testing.assert_allclose(adjusted[valid], reference, rtol=1e-12)
 
 
-def test_scan_windows_adjusts_over_every_window_like_statsmodels() -> None:
-    # Every window of 1..7 days is one test in one Holm family: rebuild the family with
-    # scipy.stats.chisquare and statsmodels' Holm and compare what the scan reports.
+def test_scan_windows_spends_its_level_over_every_window_it_will_ever_test() -> None:
+    # Every window of 1..7 days is one test; a window ending on day t (1-based) is tested at
+    # alpha * gamma(t) / min(7, t) with gamma(t) = (t + 6)^-1.5 / zeta(1.5, 7). Rebuild the
+    # family with scipy.stats.chisquare and scipy.special.zeta and compare what the scan
+    # reports (Bonferroni over a family that grows by day; reference: scipy).
     rng = np.random.default_rng(402)
     days, max_window = 20, 7
     planned = np.tile([0.5, 0.3, 0.2], (days, 1))
@@ -136,15 +138,17 @@ def test_scan_windows_adjusts_over_every_window_like_statsmodels() -> None:
     counts[12] += [0, 260, 0]
     counts[13] += [0, 240, 0]
     family: dict[tuple[int, int], float] = {}
+    adjusted: dict[tuple[int, int], float] = {}
     for length in range(1, max_window + 1):
         for start in range(days - length + 1):
             observed = counts[start:start + length].sum(axis=0)
             expected = (counts[start:start + length].sum(axis=1, keepdims=True)
                         * planned[start:start + length]).sum(axis=0)
-            family[(start, length)] = stats.chisquare(observed, f_exp=expected).pvalue
-    keys = list(family)
-    adjusted = dict(zip(keys, multipletests([family[k] for k in keys], method="holm")[1],
-                        strict=True))
+            p = stats.chisquare(observed, f_exp=expected).pvalue
+            end_day = start + length
+            gamma = (end_day + 6) ** -1.5 / special.zeta(1.5, 7)
+            family[(start, length)] = p
+            adjusted[(start, length)] = min(1.0, p * min(max_window, end_day) / gamma)
     scan = scan_windows(counts, planned, max_window=max_window, watch_alpha=0.05)
     assert scan.n_tests == len(family) == sum(days - k + 1 for k in range(1, 8))
     assert scan.min_adjusted_p_value == pytest.approx(min(adjusted.values()), rel=1e-8)
@@ -154,6 +158,9 @@ def test_scan_windows_adjusts_over_every_window_like_statsmodels() -> None:
         assert window.p_value == pytest.approx(family[key], rel=1e-8, abs=1e-300)
         assert window.adjusted_p_value == pytest.approx(adjusted[key], rel=1e-8, abs=1e-300)
         assert window.adjusted_p_value < 0.05
+    # The spending shares of all days add up to at most 1 (the lifetime guarantee).
+    assert special.zeta(1.5, 7) == pytest.approx(sum((t + 6) ** -1.5 for t in range(1, 10**6))
+                                                + 2 / np.sqrt(10**6 + 6.5), rel=1e-6)
     chosen_days = {d for w in scan.selected for d in range(w.start, w.stop)}
     assert {12, 13} <= chosen_days
 

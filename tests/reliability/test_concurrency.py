@@ -29,7 +29,8 @@ from inrush_process import inrush_serve
 from notify_receiver import Receiver, running_receiver
 from sqlalchemy import func, select
 
-from service.db.models import Alert, AlertEvent, DiagnosisSnapshot, Observation
+from service.db.incident_models import IncidentEvent
+from service.db.models import Alert, DiagnosisSnapshot, Observation
 from service.db.notify_models import DELIVERED, Outbox
 from service.db.session import Database
 from service.demo import scenario
@@ -148,7 +149,11 @@ def _wait_for_deliveries(database: Database, receiver: Receiver) -> list[str]:
     while True:
         with database.sessions() as session:
             rows = session.execute(select(Outbox.event_id, Outbox.status)).all()
-        if rows and all(status == DELIVERED for _, status in rows):
+            # One row per incident transition that notifies (none while the detectors find
+            # no episode in the data).
+            expected = session.scalar(select(func.count()).select_from(IncidentEvent).where(
+                IncidentEvent.action.in_(("opened", "reopened", "updated", "resolved"))))
+        if len(rows) == expected and all(status == DELIVERED for _, status in rows):
             break
         assert time.monotonic() < deadline, Counter(status for _, status in rows)
         time.sleep(0.2)
@@ -214,13 +219,13 @@ def _check_alerts_and_notifications(database: Database, receiver: Receiver,
         identities = session.execute(select(Alert.kind, Alert.key, func.count())
                                      .where(Alert.experiment_id == EXPERIMENT_ID)
                                      .group_by(Alert.kind, Alert.key)).all()
-        # Every transition that notifies was queued exactly once.
+        # Every incident transition that notifies was queued exactly once.
         transitions = dict(session.execute(
-            select(AlertEvent.alert_id, func.count())
-            .where(AlertEvent.action.in_(("opened", "reopened", "resolved")))
-            .group_by(AlertEvent.alert_id)).all())
-        queued = dict(session.execute(select(Outbox.alert_id, func.count())
-                                      .group_by(Outbox.alert_id)).all())
+            select(IncidentEvent.incident_id, func.count())
+            .where(IncidentEvent.action.in_(("opened", "reopened", "updated", "resolved")))
+            .group_by(IncidentEvent.incident_id)).all())
+        queued = dict(session.execute(select(Outbox.incident_id, func.count())
+                                      .group_by(Outbox.incident_id)).all())
     assert identities, "the demo data raises alerts"
     assert all(count == 1 for *_, count in identities), identities
     assert queued == transitions

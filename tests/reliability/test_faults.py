@@ -15,11 +15,13 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import func, select
 
+from service import analysis
 from service.app import create_app
 from service.db.notify_models import DeliveryAttempt, Outbox
 from service.notify.settings import NotifySettings
 from service.notify.worker import NotifyWorker
 from service.settings import Settings
+from tests.episode_fixtures import with_episodes
 from tests.reliability.conftest import ADMIN_TOKEN
 from tests.reliability.support import (
     DEMO_CSV,
@@ -131,6 +133,8 @@ def test_webhook_receiver_outage_ends_with_every_notification_delivered(
     it recovers. Every notification arrives, and each alert's deliveries list the failed
     attempts and the final delivery."""
     monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1")
+    real = analysis.diagnose  # diagnoses with episodes: the demo's campaign days form one
+    monkeypatch.setattr(analysis, "diagnose", lambda *a, **k: with_episodes(real(*a, **k)))
     receiver = FaultyReceiver(mode={"down": "ok", "slow": "slow", "error": "error"}[fault],
                               delay=1.0)
     if fault != "down":
@@ -149,8 +153,9 @@ def test_webhook_receiver_outage_ends_with_every_notification_delivered(
         assert written.status_code == 200, written.text
         database = app.state.database
         with database.sessions() as session:
-            queued = {row.event_id: row.alert_id for row in session.scalars(select(Outbox))}
-        assert queued, "the demo data opens alerts, which queue notifications"
+            queued = {row.event_id: row.incident_id
+                      for row in session.scalars(select(Outbox))}
+        assert queued, "the demo data opens an incident, which queues a notification"
 
         worker = NotifyWorker(database, notify, schedule=FAST_RETRIES, rng=random.Random(5))
         worker.start()
@@ -176,8 +181,8 @@ def test_webhook_receiver_outage_ends_with_every_notification_delivered(
             receiver.stop()
 
         failed_attempts = 0
-        for alert_id in sorted(set(queued.values())):
-            listing = client.get(f"/v1/alerts/{alert_id}/deliveries")
+        for incident_id in sorted(set(queued.values())):
+            listing = client.get(f"/v1/incidents/{incident_id}/deliveries")
             assert listing.status_code == 200, listing.text
             for item in listing.json()["items"]:
                 assert item["status"] == "delivered" and item["delivered_at"], item
@@ -194,9 +199,9 @@ def test_webhook_receiver_outage_ends_with_every_notification_delivered(
         record(f"faults.webhook_{fault}.failed_attempts", failed_attempts)
 
 
-def _all_delivered(client: TestClient, alert_ids: set[int]) -> bool:
-    for alert_id in alert_ids:
-        items = client.get(f"/v1/alerts/{alert_id}/deliveries").json()["items"]
+def _all_delivered(client: TestClient, incident_ids: set[int]) -> bool:
+    for incident_id in incident_ids:
+        items = client.get(f"/v1/incidents/{incident_id}/deliveries").json()["items"]
         if not items or any(i["status"] != "delivered" for i in items):
             return False
     return True

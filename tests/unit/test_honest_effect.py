@@ -312,10 +312,12 @@ def test_no_clean_cohort_is_an_input_error_naming_the_metric() -> None:
 
 def test_cells_from_document_reads_incidents_or_flagged_days() -> None:
     incidents = {"incidents": [
-        {"arm": "cards", "cells": [{"date": "2026-03-03", "source": "push", "units": 120.4},
-                                   {"date": "2026-03-04", "source": "push", "units": 0}]},
-        {"arm": "control", "cells": [{"date": "2026-03-05", "source": "organic",
-                                      "units": -40.0}]}],
+        {"arm": "cards", "shape": "inflow",
+         "cells": [{"date": "2026-03-03", "source": "push", "units": 120.4},
+                   {"date": "2026-03-03", "source": "organic", "units": -3.0},
+                   {"date": "2026-03-04", "source": "push", "units": 0}]},
+        {"arm": "control", "shape": "shortfall",
+         "cells": [{"date": "2026-03-05", "source": "organic", "units": -40.0}]}],
         "flagged_days": [{"date": "2026-03-09", "severity": "alert"}]}
     assert cells_from_document(incidents) == (
         ContaminatedCell(dt.date(2026, 3, 3), "push", "cards", 120.4),
@@ -340,7 +342,8 @@ def test_cells_from_episodes() -> None:
     episode = Episode(
         shape="inflow", arm="cards", start=day(1), end=day(2), units=300.0,
         daily=(EpisodeDay(day(1), 200.0), EpisodeDay(day(2), 100.0)),
-        cells=(EpisodeCell(day(1), "push", 200.0), EpisodeCell(day(2), "push", 100.0)),
+        cells=(EpisodeCell(day(1), "push", 200.0), EpisodeCell(day(2), "push", 100.0),
+               EpisodeCell(day(2), "organic", -7.0)),
         sources=(), campaigns=(), severity="alert", material=True, p_value=1e-6,
         detected_by=("scan",), summary="", units_meaning="", advice=(), evidence=())
     assert cells_from_episodes([episode]) == (

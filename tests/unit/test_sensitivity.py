@@ -15,10 +15,9 @@ from detectors.sensitivity import (
     required_noncentrality,
     sensitivity,
     sequential_critical_statistic,
-    window_family_size,
 )
 from detectors.sequential import DEFAULT_CONCENTRATION, log_bayes_factor, sequential_srm
-from detectors.srm import scan_windows
+from detectors.srm import scan_windows, window_level
 
 ALPHA = 0.0005
 MAX_WINDOW = 7
@@ -73,15 +72,14 @@ def test_power_matches_scipy_noncentral_chi_square_and_chisquare_statistic() -> 
     counts = np.tile([3000, 1500, 1500], (30, 1))
     planned = np.tile([0.5, 0.25, 0.25], (30, 1))
     result = sensitivity(counts, planned, ["control", "cards", "map"], days=4)
-    family = window_family_size(30, MAX_WINDOW)
-    assert result.family_size == family
+    level = window_level(30, MAX_WINDOW, ALPHA)
     inflow, weights, baseline, days = result.arms[1].units_per_day, np.array([.5, .25, .25]), \
         6000.0, 4
     observed = days * (baseline * weights + np.array([0.0, inflow, 0.0]))
     expected = days * (baseline + inflow) * weights
     reference_nc = stats.chisquare(observed, expected).statistic
     assert inflow_noncentrality(inflow, baseline, weights, 1, days) == pytest.approx(reference_nc)
-    power = stats.ncx2.sf(stats.chi2.isf(ALPHA / family, 2), 2, reference_nc)
+    power = stats.ncx2.sf(stats.chi2.isf(level, 2), 2, reference_nc)
     assert power == pytest.approx(0.8, abs=1e-6)
     assert result.arms[1].share_of_arm_traffic == pytest.approx(inflow / 1500.0)
 
@@ -101,14 +99,15 @@ def test_one_degree_of_freedom_power_equals_the_two_sided_normal_formula() -> No
     assert solved == pytest.approx((z + stats.norm.isf(0.2)) ** 2, rel=1e-4)
 
 
-def test_family_size_is_what_scan_windows_tests() -> None:
+def test_level_is_the_scans_level_for_a_window_ending_today() -> None:
     rng = np.random.default_rng(3)
     counts = _null_days(rng, 1000, np.array([0.5, 0.5]), 20)
-    counts[6] = 0  # a day without units: windows holding only it are not tested
     planned = np.full((20, 2), 0.5)
-    result = sensitivity(counts, planned, ["control", "cards"], days=2)
-    assert result.family_size == scan_windows(counts, planned, max_window=MAX_WINDOW).n_tests
-    assert window_family_size(28, 7) == 175
+    result = sensitivity(counts, planned, ["control", "cards"], days=2, alpha=ALPHA)
+    assert result.family_size == round(ALPHA / window_level(20, MAX_WINDOW, ALPHA))
+    # A younger experiment than the inflow is long: the level of a window ending on its day.
+    young = sensitivity(counts[:3], planned[:3], ["control", "cards"], days=5, alpha=ALPHA)
+    assert young.family_size == round(ALPHA / window_level(5, MAX_WINDOW, ALPHA))
 
 
 def test_whole_period_shift_is_caught_80_percent_of_the_time() -> None:
@@ -179,7 +178,8 @@ def test_to_dict_is_json_safe_and_says_what_it_assumes() -> None:
     assert [a["arm"] for a in document["arms"]] == ["control", "cards"]
     assert {"relative_share_shift", "units"} <= set(document["whole_period"])
     assert document["window_days"] == MAX_WINDOW
-    assert "10 days" in document["summary"] and "175 windows" in document["summary"]
+    assert "10 days" in document["summary"]
+    assert f"{document['family_size']:,} windows" in document["summary"]
     assert any("at most 7 days" in c for c in document["caveats"])
 
 
