@@ -219,7 +219,7 @@ def format_diagnosis(doc: dict[str, Any], result: Any = None) -> str:
         rows = [["date", "level", "shape", "arm", "units", "p-value", "units came from"]]
         for day in flagged:
             sources = ", ".join(f"{s['source']} {100 * s['share_of_excess']:.0f}%"
-                                for s in day["sources"][:3]) or "no single source"
+                                for s in day["sources"][:2]) or "no single source"
             rows.append([day["date"], day["severity"], day["shape"].replace("_", " "),
                          day["arm"], signed(day["units"]), p_value(day["p_value"]), sources])
         lines += table(rows, right=(4, 5))
