@@ -19,6 +19,7 @@ from detectors import (
     daily_series,
     diagnose,
 )
+from detectors.contamination import impact_function
 
 from .alerting import CORRECTED_DATA, AlertChanges
 from .campaigns import known_campaigns
@@ -135,7 +136,8 @@ def refresh_diagnosis(session: Session, experiment: Experiment, *,
     if table is not None and int(table.entered.sum()) > 0:
         # Registered campaigns are named on the flagged days of their dates and source.
         diagnosis = diagnose(table, schedule, config=config, experiment=experiment.id,
-                             campaigns=known_campaigns(session, experiment.id))
+                             campaigns=known_campaigns(session, experiment.id),
+                             impact=impact_function)
         document = json_safe(diagnosis.to_dict())
         series = json_safe(daily_series(table, schedule, diagnosis))
     elif table is not None:

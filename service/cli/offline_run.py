@@ -29,6 +29,7 @@ from detectors.contamination import (
     ContaminatedCell,
     cells_from_document,
     cells_from_episodes,
+    impact_function,
     incident_impact,
 )
 from detectors.data import UNATTRIBUTED
@@ -69,7 +70,8 @@ class Loaded:
 def analyze(args: argparse.Namespace) -> int:
     try:
         loaded = load(args)
-        result = diagnose(loaded.table, loaded.schedule, experiment=args.file.stem)
+        result = diagnose(loaded.table, loaded.schedule, experiment=args.file.stem,
+                          impact=impact_function)
         document = result.to_dict()
         traffic = ArmTraffic.from_table(loaded.table, loaded.schedule)
         if traffic is not None:  # the smallest inflow over 2 days these thresholds would flag
@@ -102,7 +104,7 @@ def reweight_file(args: argparse.Namespace) -> int:
             raise BadInputError([_item("--cohort-weights", "sets a custom target; leave out "
                                        "--target")])
         table, schedule = loaded.table, loaded.schedule
-        diagnosis = diagnose(table, schedule)
+        diagnosis = diagnose(table, schedule, impact=impact_function)
         cells = cells_from_document(diagnosis.to_dict())
         explicit = (args.target is not None or weights is not None or args.by is not None
                     or exclude_dates or exclude_sources)
