@@ -4,14 +4,18 @@ from __future__ import annotations
 
 import csv
 import io
+from collections import Counter
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
+from detectors.data import MAX_METRICS
 from detectors.errors import InputError, Problem
 
 REQUIRED_COLUMNS = ("date", "arm", "entered")
+# date, arm, source, entered and three columns per metric.
+MAX_COLUMNS = 4 + 3 * MAX_METRICS
 
 
 def read_observations_csv(source: str | bytes | Path) -> pd.DataFrame:
@@ -47,12 +51,12 @@ def strict_csv(text: str) -> pd.DataFrame:
     reader = csv.reader(io.StringIO(text, newline=""), strict=True)
     try:
         header = [name.strip() for name in next(reader)]
+        problems = _header_problems(header)
+        if problems:  # before reading the rows: a bad header makes them meaningless
+            raise InputError(problems)
         rows = list(reader)
     except csv.Error as error:
         raise InputError([Problem("body", f"CSV is malformed: {error}")]) from None
-    problems = _header_problems(header)
-    if problems:
-        raise InputError(problems)
     rows = [r for r in rows if r != []]  # blank lines carry nothing
     for index, row in enumerate(rows):
         if len(row) != len(header):
@@ -67,12 +71,18 @@ def strict_csv(text: str) -> pd.DataFrame:
 
 
 def _header_problems(header: list[str]) -> list[Problem]:
-    """What is wrong with the (stripped) header names: required columns missing, repeats."""
+    """What is wrong with the (stripped) header names: too many, required columns missing,
+    repeats. Linear in the header's length."""
+    if len(header) > MAX_COLUMNS:
+        return [Problem("header", f"has {len(header)} columns; at most {MAX_COLUMNS} are "
+                        f"accepted (date, arm, source, entered and 3 per metric for at most "
+                        f"{MAX_METRICS} metrics)")]
     problems: list[Problem] = []
-    missing = [c for c in REQUIRED_COLUMNS if c not in header]
+    counts = Counter(header)
+    missing = [c for c in REQUIRED_COLUMNS if c not in counts]
     if missing:
         problems.append(Problem("header", f"missing required column(s): {', '.join(missing)}"))
-    duplicated = sorted({c for c in header if header.count(c) > 1})
+    duplicated = sorted(c for c, count in counts.items() if count > 1)
     if duplicated:
         problems.append(Problem("header", f"repeated column(s): {', '.join(duplicated)}"))
     return problems

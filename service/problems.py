@@ -216,14 +216,37 @@ def _input_handler(request: Request, exc: Exception) -> JSONResponse:
     return input_error_response(request, exc)
 
 
+# PostgreSQL SQLSTATEs after which the same request may well succeed: connection exception
+# (08), insufficient resources (53: too many connections, disk full), operator intervention
+# (57: a statement timeout, a server shutting down or starting), and serialisation failures,
+# deadlocks and lock timeouts. Anything else (a limit exceeded, a bad statement) fails again.
+_TRANSIENT_SQLSTATE_CLASSES = ("08", "53", "57")
+_TRANSIENT_SQLSTATES = frozenset({"40001", "40P01", "55P03"})
+# SQLite primary result codes of the same kind: locked past the busy timeout, interrupted (the
+# statement timeout), the file unreadable, unopenable or full.
+_TRANSIENT_SQLITE_CODES = frozenset({5, 6, 9, 10, 13, 14, 15})
+
+
 def database_unavailable(exc: BaseException) -> bool:
-    """Whether ``exc`` says the database cannot be used right now (retrying may succeed):
-    unreachable, refusing connections, locked past the busy timeout, a dropped connection,
-    or no pooled connection free in time."""
-    if isinstance(exc, OperationalError | InterfaceError | DisconnectionError
-                  | PoolTimeoutError):
+    """Whether ``exc`` says the database cannot be used right now, so that retrying later may
+    succeed (answered 503 with ``Retry-After``): unreachable, refusing connections, locked or
+    busy past a timeout, a dropped connection, no pooled connection free in time. An error
+    the same request would meet again (too many columns, a limit, a bug) is not."""
+    if isinstance(exc, DisconnectionError | PoolTimeoutError | InterfaceError):
         return True
-    return isinstance(exc, DBAPIError) and bool(exc.connection_invalidated)
+    if not isinstance(exc, DBAPIError):
+        return False
+    if exc.connection_invalidated:
+        return True
+    cause = exc.orig
+    sqlstate = getattr(cause, "sqlstate", None)  # psycopg
+    if isinstance(sqlstate, str):
+        return sqlstate[:2] in _TRANSIENT_SQLSTATE_CLASSES or sqlstate in _TRANSIENT_SQLSTATES
+    code = getattr(cause, "sqlite_errorcode", None)  # sqlite3
+    if isinstance(code, int):
+        return code & 0xFF in _TRANSIENT_SQLITE_CODES
+    # No code: the driver's own failure to reach the server (psycopg's connection errors).
+    return isinstance(exc, OperationalError)
 
 
 def _database_handler(request: Request, exc: Exception) -> JSONResponse:
