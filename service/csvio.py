@@ -42,7 +42,39 @@ def read_observations_csv(source: str | bytes | Path) -> pd.DataFrame:
         raise InputError([Problem("body", f"line {line} contains a NUL character (U+0000); "
                                   "is the file UTF-16 or binary?")])
     plain = plain_csv(text)
-    return plain if plain is not None else strict_csv(text)
+    return restore_text_cells(plain if plain is not None else strict_csv(text))
+
+
+# Leading characters that make spreadsheet programs read a cell as a formula (OWASP, "CSV
+# Injection"); an apostrophe is added too so that the escape can be undone exactly.
+_FORMULA_TRIGGERS = ("=", "+", "-", "@", "\t", "\r", "'")
+_ESCAPED = r"^'[=+\-@\t\r']"
+_ESCAPED_COLUMNS = ("arm", "source")
+
+
+def neutralise_cell(value: str) -> str:
+    """A text cell as exports write it: prefixed with an apostrophe when it starts with a
+    character that spreadsheets would take for a formula (``=``, ``+``, ``-``, ``@``, tab, CR)
+    or with an apostrophe itself; :func:`restore_text_cells` undoes it. Numbers are never
+    passed here (``-1`` stays a number).
+
+    Example:
+        >>> neutralise_cell("=HYPERLINK(1)"), neutralise_cell("organic")
+        ("'=HYPERLINK(1)", 'organic')
+    """
+    return "'" + value if value.startswith(_FORMULA_TRIGGERS) else value
+
+
+def restore_text_cells(frame: pd.DataFrame) -> pd.DataFrame:
+    """The arm and source cells with the export's escape (:func:`neutralise_cell`) removed:
+    an apostrophe followed by ``=``, ``+``, ``-``, ``@``, tab, CR or another apostrophe."""
+    for column in _ESCAPED_COLUMNS:
+        if column in frame:
+            cells = frame[column]
+            escaped = cells.str.contains(_ESCAPED, regex=True, na=False)
+            if escaped.any():
+                frame[column] = cells.mask(escaped, cells.str.slice(1))
+    return frame
 
 
 def strict_csv(text: str) -> pd.DataFrame:
@@ -133,7 +165,8 @@ def write_observations_csv(rows: list[dict[str, object]]) -> str:
 
     The layout is the one :func:`read_observations_csv` reads: ``date,arm,source,entered`` then
     ``NAME.n,NAME.sum,NAME.sum_sq`` per metric (sorted by name); a metric absent on a row
-    leaves its three cells empty.
+    leaves its three cells empty. Arm and source cells that a spreadsheet would run as a
+    formula are escaped (:func:`neutralise_cell`); the reader undoes it.
     """
     names = sorted({name for row in rows for name in (row.get("metrics") or {})})  # type: ignore[union-attr]
     header = ["date", "arm", "source", "entered"]
@@ -146,7 +179,8 @@ def write_observations_csv(rows: list[dict[str, object]]) -> str:
     writer.writerow(header)
     for row in rows:
         metrics: dict[str, dict[str, object]] = row.get("metrics") or {}  # type: ignore[assignment]
-        cells = [row["date"], row["arm"], row["source"], row["entered"]]
+        cells = [row["date"], neutralise_cell(str(row["arm"])),
+                 neutralise_cell(str(row["source"])), row["entered"]]
         for name in names:
             stats = metrics.get(name)
             cells += ([repr_number(stats[s]) for s in ("n", "sum", "sum_sq")] if stats
