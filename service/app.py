@@ -25,7 +25,7 @@ from .metrics import install_metrics
 from .notify.settings import NotifySettings
 from .notify.worker import start_worker
 from .pages.router import router as pages_router
-from .problems import PROBLEM_MEDIA_TYPE, install_problem_handlers
+from .problems import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_problem_handlers
 from .revalidation import RevalidationMiddleware
 from .routers import (
     alerts,
@@ -111,6 +111,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.database = database
     install_problem_handlers(app)
+    # Innermost: an unexpected error becomes a 500 that every layer above sees and logs, and
+    # the connection stays usable.
+    app.add_middleware(UnexpectedErrorMiddleware)
     app.add_middleware(ConditionalGetMiddleware)
     app.add_middleware(StrictJSONMiddleware)  # inside the size limit: reads bodies it allows
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,

@@ -18,6 +18,7 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.exc import DBAPIError, DisconnectionError, InterfaceError, OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeoutError
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from detectors.errors import InputError, Problem, UndefinedEstimateError
 
@@ -266,6 +267,38 @@ def _unexpected_handler(request: Request, exc: Exception) -> JSONResponse:
                      exc_info=exc)
     return problem_response(request, 500, "The service failed unexpectedly; nothing was "
                             "written. The error has been logged.")
+
+
+class UnexpectedErrorMiddleware:
+    """Answers an exception that no handler took with the 500 problem document, instead of
+    letting it reach the server: Starlette's outermost layer re-raises it after answering, and
+    uvicorn then drops the connection, so the client's next request on that keep-alive
+    connection met a reset. When a response had started already, only closing the connection
+    can end it, and the exception goes on to the server."""
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        started = False
+
+        async def tracking_send(message: Message) -> None:
+            nonlocal started
+            started = started or message["type"] == "http.response.start"
+            await send(message)
+
+        try:
+            await self.app(scope, receive, tracking_send)
+        except Exception as exc:
+            if started:
+                raise
+            request = Request(scope)
+            response = (_database_handler(request, exc) if database_unavailable(exc)
+                        else _unexpected_handler(request, exc))
+            await response(scope, receive, send)
 
 
 def install_problem_handlers(app: FastAPI) -> None:
