@@ -49,7 +49,7 @@ def server(database_url: str, tmp_path: Path) -> Iterator[str]:
     with inrush_serve(tmp_path, workers=2, database_url=database_url, token=TOKEN,
                       arguments=("--log-level", "warning"), clean_log=True, env={
                           "INRUSH_NOTIFY_WORKER": "1", "INRUSH_NOTIFY_POLL_SECONDS": "0.2",
-                          "INRUSH_WEBHOOK_ALLOW_HOSTS": "127.0.0.1"}) as (base, _):
+                          "INRUSH_WEBHOOK_ALLOW_HOSTS": "127.0.0.1:*"}) as (base, _):
         yield base
 
 
