@@ -106,8 +106,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                 await database.async_reads.close()
             database.dispose()
 
+    # /docs and /redoc pull their assets from public CDNs: off unless INRUSH_API_DOCS=1.
     app = FastAPI(title="Inrush", version=package_version(), description=DESCRIPTION,
-                  lifespan=lifespan)
+                  lifespan=lifespan, docs_url="/docs" if settings.api_docs else None,
+                  redoc_url="/redoc" if settings.api_docs else None)
     app.state.settings = settings
     app.state.database = database
     install_problem_handlers(app)

@@ -13,7 +13,7 @@ from ..db.session import get_session
 from ..problems import ProblemError
 from ..schemas.common import problem_responses
 from ..schemas.deliveries import DeliveryAttemptOut, DeliveryList, DeliveryOut
-from ..tokens import Principal
+from ..tokens import Principal, Scope
 from .common import MAX_BIGINT
 
 router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
@@ -22,8 +22,13 @@ router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
 @router.get("/{alert_id}/deliveries", response_model=DeliveryList,
             responses=problem_responses(401, 403, 404))
 def list_deliveries(alert_id: int, session: Session = Depends(get_session),
-                    _: Principal = Depends(require_read)) -> DeliveryList:
-    """Every notification queued for the alert, oldest first, with each delivery attempt."""
+                    principal: Principal = Depends(require_read)) -> DeliveryList:
+    """Every notification queued for the alert, oldest first, with each delivery attempt.
+
+    What the receiver answered (the start of its reply, a redirect's target) is shown to
+    write and admin tokens only: a receiver may sit on an internal network whose replies a
+    read token should not see."""
+    full = principal.scope >= Scope.write
     alert = session.get(Alert, alert_id) if 1 <= alert_id <= MAX_BIGINT else None
     if alert is None:
         raise ProblemError(404, f"There is no alert {alert_id}.")
@@ -40,5 +45,14 @@ def list_deliveries(alert_id: int, session: Session = Depends(get_session),
             created_at=row.created_at, delivered_at=row.delivered_at,
             history=[DeliveryAttemptOut(
                 attempt=a.attempt, started_at=a.started_at, duration_ms=a.duration_ms,
-                status_code=a.status_code, error=a.error, response_excerpt=a.response_excerpt)
+                status_code=a.status_code,
+                error=a.error if full else _without_receiver_text(a.error, a.status_code),
+                response_excerpt=a.response_excerpt if full else None)
                 for a in row.delivery_attempts]) for row in rows])
+
+
+def _without_receiver_text(error: str | None, status: int | None) -> str | None:
+    """The attempt's error for a read token: a redirect's target (the receiver's text) cut."""
+    if error is not None and status is not None and 300 <= status < 400:
+        return f"answered {status}, a redirect; redirects are not followed"
+    return error

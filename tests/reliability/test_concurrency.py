@@ -40,7 +40,7 @@ THREADS = 8
 ROUNDS = 2
 SHARED_DAYS = 4  # the first days of the demo: every thread writes them
 EXPERIMENT_ID = scenario.EXPERIMENT_ID
-TOKEN = "concurrency-admin-token"
+TOKEN = "concurrency-admin-token-larkspur"
 
 
 @pytest.fixture
