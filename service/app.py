@@ -84,7 +84,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or Settings()
     database = Database(settings.database_url, busy_timeout_ms=settings.sqlite_busy_timeout_ms,
                         pool_size=settings.database_pool_size,
-                        max_overflow=settings.database_max_overflow)
+                        max_overflow=settings.database_max_overflow,
+                        connect_timeout_s=settings.database_connect_timeout_seconds,
+                        statement_timeout_ms=settings.statement_timeout_ms)
     notify_settings = NotifySettings(public_url=settings.public_url)
 
     @asynccontextmanager

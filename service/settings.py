@@ -43,6 +43,16 @@ class Settings(BaseSettings):
         4, ge=0, description="extra connections a worker process may open under load "
                              "(background work; closed again when returned)")
 
+    database_connect_timeout_seconds: int = Field(
+        5, ge=2, le=300, description="how long opening a database connection may take (a "
+                                     "server that accepts and does not answer fails then)")
+    statement_timeout_ms: int = Field(
+        30_000, ge=0, description="longest a database statement may run before it is "
+                                  "cancelled and the request answers 503 (0: no limit); "
+                                  "migrations are exempt")
+    health_timeout_seconds: float = Field(
+        2.0, gt=0, le=60, description="how long /healthz waits for the database before it "
+                                      "answers 503")
     api_docs: bool = Field(
         False, description="serve the interactive API pages /docs and /redoc, which load "
                            "their scripts, styles and fonts from public CDNs (the OpenAPI "

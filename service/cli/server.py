@@ -61,7 +61,8 @@ def run_serve(args: argparse.Namespace) -> int:
     # INRUSH_MIGRATE_ON_START=0 (replicas; `inrush db upgrade` runs as its own step) only check
     # that the schema is the one this version needs.
     try:
-        database = Database(settings.database_url)
+        database = Database(settings.database_url,
+                            connect_timeout_s=settings.database_connect_timeout_seconds)
     except (SQLAlchemyError, ImportError) as error:
         print(f"inrush serve: cannot use INRUSH_DATABASE_URL: {error}", file=sys.stderr)
         return EXIT_FAILURE
