@@ -26,6 +26,7 @@ from .notify.settings import NotifySettings
 from .notify.worker import start_worker
 from .pages.router import router as pages_router
 from .problems import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_problem_handlers
+from .request_budget import RequestBudgetMiddleware
 from .revalidation import RevalidationMiddleware
 from .routers import (
     alerts,
@@ -125,6 +126,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.add_middleware(RevalidationMiddleware)  # 304s for polls, before routing
     install_metrics(app)  # outside the others: times and counts every answer
     add_cors(app)  # preflights and CORS headers on every answer, errors included
+    # Each request's time budget, and whether its client is still there (service.db.session
+    # stops its statements otherwise).
+    app.add_middleware(RequestBudgetMiddleware, seconds=settings.request_timeout_seconds)
     app.add_middleware(AccessLogMiddleware)  # outermost: ids and logs every answer
     for router in ROUTERS:
         app.include_router(router)

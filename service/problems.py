@@ -22,6 +22,8 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from detectors.errors import InputError, Problem, UndefinedEstimateError
 
+from .request_budget import RequestAbandonedError
+
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 MAX_LISTED_ERRORS = 1000
 RETRY_AFTER = "5"  # seconds a client should wait after a 503
@@ -262,6 +264,13 @@ def _database_handler(request: Request, exc: Exception) -> JSONResponse:
                             "written. Retry shortly.", headers={"Retry-After": RETRY_AFTER})
 
 
+def _abandoned_handler(request: Request, exc: Exception) -> JSONResponse:
+    # The client may be gone (then nobody reads this), or the request ran past its budget.
+    logger.warning("request stopped on %s %s: %s", request.method, request.url.path, exc)
+    return problem_response(request, 503, f"The request was stopped: {exc}; nothing was "
+                            "written. Retry shortly.", headers={"Retry-After": RETRY_AFTER})
+
+
 def _unexpected_handler(request: Request, exc: Exception) -> JSONResponse:
     logger.exception("unhandled error on %s %s", request.method, request.url.path,
                      exc_info=exc)
@@ -296,7 +305,9 @@ class UnexpectedErrorMiddleware:
             if started:
                 raise
             request = Request(scope)
-            response = (_database_handler(request, exc) if database_unavailable(exc)
+            response = (_abandoned_handler(request, exc)
+                        if isinstance(exc, RequestAbandonedError)
+                        else _database_handler(request, exc) if database_unavailable(exc)
                         else _unexpected_handler(request, exc))
             await response(scope, receive, send)
 
@@ -306,6 +317,7 @@ def install_problem_handlers(app: FastAPI) -> None:
     app.add_exception_handler(StarletteHTTPException, _http_handler)
     app.add_exception_handler(ProblemError, _problem_handler)
     app.add_exception_handler(InputError, _input_handler)
+    app.add_exception_handler(RequestAbandonedError, _abandoned_handler)
     for unavailable in (DBAPIError, DisconnectionError, PoolTimeoutError):
         app.add_exception_handler(unavailable, _database_handler)
     app.add_exception_handler(Exception, _unexpected_handler)

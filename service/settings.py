@@ -50,6 +50,11 @@ class Settings(BaseSettings):
         30_000, ge=0, description="longest a database statement may run before it is "
                                   "cancelled and the request answers 503 (0: no limit); "
                                   "migrations are exempt")
+    request_timeout_seconds: float = Field(
+        60.0, gt=0, le=3600,
+        description="time budget of a request's database work: past it (or once the client "
+                    "has gone) no statement starts, SQLite's running one is interrupted, and "
+                    "the request answers 503 having written nothing")
     health_timeout_seconds: float = Field(
         2.0, gt=0, le=60, description="how long /healthz waits for the database before it "
                                       "answers 503")

@@ -20,6 +20,7 @@ from sqlalchemy import Engine, create_engine, event, text
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
+from ..request_budget import budget_spent, check_budget
 from .async_reads import AsyncReads
 
 MIGRATIONS_DIR = Path(__file__).resolve().parent.parent / "migrations"
@@ -43,7 +44,8 @@ _SQLITE_DEADLINE = "inrush_statement_deadline"
 
 def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
                 max_overflow: int = 4, connect_timeout_s: int = CONNECT_TIMEOUT_S,
-                statement_timeout_ms: int = STATEMENT_TIMEOUT_MS) -> Engine:
+                statement_timeout_ms: int = STATEMENT_TIMEOUT_MS,
+                respect_budgets: bool = True) -> Engine:
     """An engine for ``url``; SQLite connections are configured for concurrent service use.
 
     ``pool_size`` connections are kept open and at most ``max_overflow`` more are opened
@@ -57,6 +59,10 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
     after ``statement_timeout_ms`` (PostgreSQL's ``statement_timeout``; on SQLite a progress
     handler interrupts it, rows still being fetched included); 0 turns that limit off.
     Migrations run without the statement limit.
+
+    With ``respect_budgets``, a request's statements stop when the request is past its time
+    budget or its client has gone (``service.request_budget``): none starts then, and on
+    SQLite the one running is interrupted.
     """
     parsed = make_url(url)
     if parsed.get_backend_name() != "sqlite":
@@ -64,6 +70,8 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
                                max_overflow=max_overflow, hide_parameters=True,
                                connect_args={"connect_timeout": connect_timeout_s,
                                              **_KEEPALIVES})
+        if respect_budgets:
+            event.listen(engine, "before_cursor_execute", _check_budget)
         if statement_timeout_ms and engine.dialect.name == "postgresql":
             @event.listens_for(engine, "connect")
             def _limit_statements(dbapi_connection: Any, _record: Any) -> None:
@@ -91,13 +99,20 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
         cursor.execute("PRAGMA foreign_keys=ON")
         cursor.execute("PRAGMA synchronous=NORMAL")
         cursor.close()
-        if statement_timeout_ms:
-            # The deadline of the statement running now (None: none); SQLite calls the
-            # handler every few thousand virtual-machine steps, and a true answer interrupts.
-            deadline: list[float | None] = [None]
-            _record.info[_SQLITE_DEADLINE] = deadline
-            dbapi_connection.set_progress_handler(
-                lambda: deadline[0] is not None and time.monotonic() > deadline[0], 20_000)
+        # The deadline of the statement running now (None: none); SQLite calls the handler
+        # every few thousand virtual-machine steps, and a true answer interrupts.
+        deadline: list[float | None] = [None]
+        _record.info[_SQLITE_DEADLINE] = deadline
+
+        def _interrupt() -> bool:
+            return ((deadline[0] is not None and time.monotonic() > deadline[0])
+                    or (respect_budgets and budget_spent()))
+
+        if statement_timeout_ms or respect_budgets:
+            dbapi_connection.set_progress_handler(_interrupt, 20_000)
+
+    if respect_budgets:
+        event.listen(engine, "before_cursor_execute", _check_budget)
 
     if statement_timeout_ms:
         limit_s = statement_timeout_ms / 1000
@@ -123,6 +138,11 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
         connection.exec_driver_sql(f"BEGIN {options.get(_BEGIN_OPTION, 'DEFERRED')}")
 
     return engine
+
+
+def _check_budget(connection: Any, *_: Any) -> None:
+    if not connection.get_execution_options().get(_NO_STATEMENT_TIMEOUT):
+        check_budget()
 
 
 class Database:
@@ -154,8 +174,11 @@ class Database:
                                           statement_timeout_ms=statement_timeout_ms)
         elif self.engine.dialect.name == "sqlite" and database not in ("", ":memory:") \
                 and not database.startswith("file:"):
+            # Its reads answer polls before routing; a failed one leaves the request to the
+            # routes, which respect the request's budget.
             self.quick_reads = make_engine(url, busy_timeout_ms=0, pool_size=1, max_overflow=0,
-                                           statement_timeout_ms=statement_timeout_ms)
+                                           statement_timeout_ms=statement_timeout_ms,
+                                           respect_budgets=False)
 
     @property
     def dialect(self) -> str:
