@@ -123,12 +123,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.add_middleware(StrictJSONMiddleware)  # inside the size limit: reads bodies it allows
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,
                        public_url=settings.public_url)
+    # Each request's time budget, and whether its client is still there (service.db.session
+    # stops its statements otherwise); outside the body limit, whose refusal is raised while
+    # the application reads the body, and inside the polls' fast path, which needs neither.
+    app.add_middleware(RequestBudgetMiddleware, seconds=settings.request_timeout_seconds)
     app.add_middleware(RevalidationMiddleware)  # 304s for polls, before routing
     install_metrics(app)  # outside the others: times and counts every answer
     add_cors(app)  # preflights and CORS headers on every answer, errors included
-    # Each request's time budget, and whether its client is still there (service.db.session
-    # stops its statements otherwise).
-    app.add_middleware(RequestBudgetMiddleware, seconds=settings.request_timeout_seconds)
     app.add_middleware(AccessLogMiddleware)  # outermost: ids and logs every answer
     for router in ROUTERS:
         app.include_router(router)
