@@ -15,6 +15,7 @@ from ..schemas.common import problem_responses
 from ..settings import Settings
 
 router = APIRouter(tags=["health"])
+PROBE_THREADS = 4  # concurrent checks (load balancers, orchestrators) that may wait at once
 
 
 class Health(BaseModel):
@@ -28,15 +29,15 @@ async def healthz(request: Request) -> JSONResponse:
     not within ``INRUSH_HEALTH_TIMEOUT_SECONDS`` (2 s by default)."""
     database: Database = request.app.state.database
     settings: Settings = request.app.state.settings
-    # One check at a time on a thread of its own: while a database that does not answer
-    # holds it (until the connect or statement timeout frees it), checks answer 503 at once
+    # Checks run on a few threads of their own: while a database that does not answer holds
+    # them all (until the connect or statement timeout frees them), checks answer 503 at once
     # instead of piling up on the request threads.
     probe: anyio.CapacityLimiter | None = getattr(request.app.state, "health_probe", None)
     if probe is None:
-        probe = request.app.state.health_probe = anyio.CapacityLimiter(1)
+        probe = request.app.state.health_probe = anyio.CapacityLimiter(PROBE_THREADS)
     problem: str | None = None
     if probe.available_tokens < 1:
-        problem = "an earlier check is still waiting for the database"
+        problem = "earlier checks are still waiting for the database"
     else:
         try:
             with anyio.fail_after(settings.health_timeout_seconds):

@@ -17,6 +17,7 @@ from sqlalchemy.exc import OperationalError
 from service.app import create_app
 from service.db.session import Database
 from service.problems import database_unavailable
+from service.routers.health import PROBE_THREADS
 from service.settings import Settings
 from tests.reliability.support import EXPERIMENT
 
@@ -57,9 +58,9 @@ def test_a_silent_postgresql_server_answers_503_fast() -> None:
                             database_connect_timeout_seconds=2, health_timeout_seconds=1)
         with TestClient(create_app(settings), raise_server_exceptions=False) as client:
             client.headers["Authorization"] = f"Bearer {TOKEN}"
-            # Readiness gives up after its own 1 s, before the 2 s connect timeout; the check
-            # right after it answers at once (the first still holds the probe thread).
-            for _ in range(2):
+            # Readiness gives up after its own 1 s, before the 2 s connect timeout; once the
+            # earlier checks hold every probe thread, the next answers at once.
+            for _ in range(PROBE_THREADS + 1):
                 health = client.get("/healthz")
                 assert health.status_code == 503
                 assert health.json()["database"] == "unreachable"
