@@ -21,6 +21,17 @@ from .errors import InputError, Problem
 UNATTRIBUTED = "unattributed"
 STAT_FIELDS = ("n", "sum", "sum_sq")
 METRIC_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,63}$")
+# Metrics one experiment may carry: each adds three columns to every read of its rows and
+# three arguments to the statements that store them, and databases cap both (SQLite's result
+# sets at 2,000 columns, PostgreSQL's functions at 100 arguments).
+MAX_METRICS = 64
+# Most units one experiment (and so one row) may hold: far beyond any real experiment, and
+# far below 2^53, so every count and total stays exact in float64 and the log-gamma terms of
+# the anytime-valid test keep their precision.
+MAX_UNITS = 10**12
+# Largest magnitude of a metric statistic: every total and square the detectors form from
+# them stays finite.
+MAX_STAT_MAGNITUDE = 1e100
 # Relative slack for sum_sq >= sum^2/n: exports round floating sums.
 _SUMSQ_RTOL = 1e-9
 
@@ -167,6 +178,9 @@ def records_to_frame(rows: Iterable[Mapping[str, object]]) -> pd.DataFrame:
     if problems:
         raise InputError(problems)
     names = list(dict.fromkeys(name for metrics in nested for name in metrics))  # type: ignore[union-attr]
+    if len(names) > MAX_METRICS:  # before a column is built for each
+        raise InputError([Problem("metrics", f"{len(names)} metrics; at most {MAX_METRICS} "
+                                  "are accepted per experiment")])
     columns: dict[str, list[object]] = {
         key: [row.get(key) for row in rows] for key in ("date", "arm", "source", "entered")}
     for name in names:
@@ -204,6 +218,9 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
     if problems:
         raise InputError(problems)
     names = metric_columns(frame.columns)
+    if len(names) > MAX_METRICS:
+        raise InputError([Problem("metrics", f"{len(names)} metrics; at most {MAX_METRICS} "
+                                  "are accepted per experiment")])
     for name in names:
         if not METRIC_NAME.match(name):
             problems.append(Problem(f"{name}", "metric names are letters, digits and _"))
@@ -234,7 +251,9 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
 
     raw_dates = frame["date"]
     as_text = raw_dates.astype("string").str.strip()
-    well_written = as_text.str.fullmatch(r"\d{4}-\d{2}-\d{2}").fillna(False).astype(bool)
+    # ASCII digits only: \\d would also take other scripts' digits (full-width ２０２６).
+    well_written = as_text.str.fullmatch(r"[0-9]{4}-[0-9]{2}-[0-9]{2}").fillna(False) \
+        .astype(bool)
     dates = pd.to_datetime(as_text.where(well_written), format="%Y-%m-%d", errors="coerce")
     flag_values(dates.isna().to_numpy(), "date", _date_message)
     day = dates.to_numpy().astype("datetime64[D]")
@@ -259,7 +278,15 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
     entered = _numeric(frame["entered"])
     bad_entered = ~np.isfinite(entered) | (entered < 0) | (entered != np.floor(entered))
     flag_values(bad_entered, "entered", lambda text: _count_message(text, "entered"), entered)
-    flag(np.isfinite(entered) & (entered > 2**53), "entered", "is implausibly large")
+    # Checked on float64, where a count past 2^53 may be rounded: it is refused all the same,
+    # never stored rounded.
+    flag(np.isfinite(entered) & (entered > MAX_UNITS), "entered",
+         f"is larger than {MAX_UNITS:,} (10^12), the most units an experiment holds")
+
+    total = float(np.sum(entered, where=~bad_entered & (entered <= MAX_UNITS)))
+    if total > MAX_UNITS:
+        problems.append(Problem("entered", f"the rows enter {total:,.0f} units together; an "
+                                f"experiment holds at most {MAX_UNITS:,} (10^12)"))
 
     clean = pd.DataFrame({"date": day, "arm": arm, "source": source,
                           "entered": np.where(bad_entered, 0, entered)})
@@ -280,7 +307,10 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
         stats[absent] = 0.0
         n, total, total_sq = stats.T
         partial |= unreadable
-        ok = ~partial
+        with np.errstate(invalid="ignore"):
+            huge = ~partial & (np.abs(stats) > MAX_STAT_MAGNITUDE).any(axis=1)
+        flag(huge, name, f"n, sum and sum_sq must lie within +-{MAX_STAT_MAGNITUDE:g}")
+        ok = ~partial & ~huge
         flag_values(ok & ((n < 0) | (n != np.floor(n))), f"{name}.n",
                     lambda text: _count_message(text, "n"), n)
         flag(ok & ~bad_entered & (n > entered), f"{name}.n",

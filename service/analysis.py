@@ -28,6 +28,7 @@ from .db.models import DiagnosisSnapshot, Experiment, Observation, utcnow
 from .db.observation_store import StagedUpload, read_observations
 from .http import entity_tag, json_safe
 from .incidents import IncidentChanges, sync_incidents
+from .ingest import check_experiment_limits
 from .notify.outbox import enqueue_for_changes
 
 NO_DATA = "no_data"
@@ -70,6 +71,8 @@ def load_table(session: Session, experiment: Experiment, *,
     taken from memory instead of being read back).
     """
     rows = read_observations(session, experiment.id, staged)
+    if staged is not None:  # an upload: refused (and rolled back) past the experiment's limits
+        check_experiment_limits(rows)
     if not len(rows):
         return None
     return ObservationTable.from_cells(experiment.arms, rows.dates, rows.arms, rows.sources,

@@ -25,7 +25,8 @@ from .metrics import install_metrics
 from .notify.settings import NotifySettings
 from .notify.worker import start_worker
 from .pages.router import router as pages_router
-from .problems import PROBLEM_MEDIA_TYPE, install_problem_handlers
+from .problems import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_problem_handlers
+from .request_budget import RequestBudgetMiddleware
 from .revalidation import RevalidationMiddleware
 from .routers import (
     alerts,
@@ -85,7 +86,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or Settings()
     database = Database(settings.database_url, busy_timeout_ms=settings.sqlite_busy_timeout_ms,
                         pool_size=settings.database_pool_size,
-                        max_overflow=settings.database_max_overflow)
+                        max_overflow=settings.database_max_overflow,
+                        connect_timeout_s=settings.database_connect_timeout_seconds,
+                        statement_timeout_ms=settings.statement_timeout_ms)
     notify_settings = NotifySettings(public_url=settings.public_url)
 
     @asynccontextmanager
@@ -107,15 +110,24 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                 await database.async_reads.close()
             database.dispose()
 
+    # /docs and /redoc pull their assets from public CDNs: off unless INRUSH_API_DOCS=1.
     app = FastAPI(title="Inrush", version=package_version(), description=DESCRIPTION,
-                  lifespan=lifespan)
+                  lifespan=lifespan, docs_url="/docs" if settings.api_docs else None,
+                  redoc_url="/redoc" if settings.api_docs else None)
     app.state.settings = settings
     app.state.database = database
     install_problem_handlers(app)
+    # Innermost: an unexpected error becomes a 500 that every layer above sees and logs, and
+    # the connection stays usable.
+    app.add_middleware(UnexpectedErrorMiddleware)
     app.add_middleware(ConditionalGetMiddleware)
     app.add_middleware(StrictJSONMiddleware)  # inside the size limit: reads bodies it allows
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,
                        public_url=settings.public_url)
+    # Each request's time budget, and whether its client is still there (service.db.session
+    # stops its statements otherwise); outside the body limit, whose refusal is raised while
+    # the application reads the body, and inside the polls' fast path, which needs neither.
+    app.add_middleware(RequestBudgetMiddleware, seconds=settings.request_timeout_seconds)
     app.add_middleware(RevalidationMiddleware)  # 304s for polls, before routing
     install_metrics(app)  # outside the others: times and counts every answer
     add_cors(app)  # preflights and CORS headers on every answer, errors included

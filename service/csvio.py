@@ -7,12 +7,14 @@ import difflib
 import io
 import itertools
 import re
+from collections import Counter
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
+from detectors.data import MAX_METRICS
 from detectors.errors import InputError, Problem
 
 REQUIRED_COLUMNS = ("date", "arm", "entered")
@@ -46,6 +48,8 @@ class CsvInputError(InputError):
     def __init__(self, problems: list[Problem], lines: np.ndarray | None = None) -> None:
         super().__init__(problems)
         self.lines = lines
+# date, arm, source, entered and three columns per metric.
+MAX_COLUMNS = 4 + 3 * MAX_METRICS
 
 
 def read_observations_csv(source: str | bytes | Path) -> pd.DataFrame:
@@ -81,7 +85,40 @@ def read_csv_rows(source: str | bytes | Path) -> CsvRows:
     errors, unused = column_problems(list(rows.frame.columns))
     if errors:
         raise CsvInputError(errors)
-    return CsvRows(rows.frame, rows.lines, rows.delimiter, tuple(unused))
+    return CsvRows(restore_text_cells(rows.frame), rows.lines, rows.delimiter,
+                   tuple(unused))
+
+
+# Leading characters that make spreadsheet programs read a cell as a formula (OWASP, "CSV
+# Injection"); an apostrophe is added too so that the escape can be undone exactly.
+_FORMULA_TRIGGERS = ("=", "+", "-", "@", "\t", "\r", "'")
+_ESCAPED = r"^'[=+\-@\t\r']"
+_ESCAPED_COLUMNS = ("arm", "source")
+
+
+def neutralise_cell(value: str) -> str:
+    """A text cell as exports write it: prefixed with an apostrophe when it starts with a
+    character that spreadsheets would take for a formula (``=``, ``+``, ``-``, ``@``, tab, CR)
+    or with an apostrophe itself; :func:`restore_text_cells` undoes it. Numbers are never
+    passed here (``-1`` stays a number).
+
+    Example:
+        >>> neutralise_cell("=HYPERLINK(1)"), neutralise_cell("organic")
+        ("'=HYPERLINK(1)", 'organic')
+    """
+    return "'" + value if value.startswith(_FORMULA_TRIGGERS) else value
+
+
+def restore_text_cells(frame: pd.DataFrame) -> pd.DataFrame:
+    """The arm and source cells with the export's escape (:func:`neutralise_cell`) removed:
+    an apostrophe followed by ``=``, ``+``, ``-``, ``@``, tab, CR or another apostrophe."""
+    for column in _ESCAPED_COLUMNS:
+        if column in frame:
+            cells = frame[column]
+            escaped = cells.str.contains(_ESCAPED, regex=True, na=False)
+            if escaped.any():
+                frame[column] = cells.mask(escaped, cells.str.slice(1))
+    return frame
 
 
 def decode_csv(source: str | bytes) -> str:
@@ -142,6 +179,9 @@ def strict_csv_lines(text: str, delimiter: str = ",") -> tuple[pd.DataFrame, np.
     lines: list[int] = []
     try:
         header = [name.strip() for name in next(reader)]
+        problems = _header_problems(header, text, delimiter)
+        if problems:  # before reading the rows: a bad header makes them meaningless
+            raise CsvInputError(problems)
         line = reader.line_num + 1
         for row in reader:
             if row != []:  # blank lines carry nothing
@@ -151,9 +191,6 @@ def strict_csv_lines(text: str, delimiter: str = ",") -> tuple[pd.DataFrame, np.
     except csv.Error as error:
         raise CsvInputError([Problem("body", f"CSV is malformed: {error} (line "
                                      f"{reader.line_num})")]) from None
-    problems = _header_problems(header, text, delimiter)
-    if problems:
-        raise CsvInputError(problems)
     for index, row in enumerate(rows):
         if len(row) != len(header):
             problems.append(Problem("row", _ragged_message(row, header, delimiter), index))
@@ -183,13 +220,19 @@ def _ragged_message(row: list[str], header: list[str], delimiter: str) -> str:
 
 def _header_problems(header: list[str], text: str = "", delimiter: str = ","
                      ) -> list[Problem]:
-    """What is wrong with the (stripped) header names: required columns missing, repeats."""
+    """What is wrong with the (stripped) header names: too many, required columns missing,
+    repeats. Linear in the header's length (the column count is capped first)."""
+    if len(header) > MAX_COLUMNS:
+        return [Problem("header", f"has {len(header)} columns; at most {MAX_COLUMNS} are "
+                        f"accepted (date, arm, source, entered and 3 per metric for at most "
+                        f"{MAX_METRICS} metrics)")]
     problems: list[Problem] = []
+    counts = Counter(header)
     for column in REQUIRED_COLUMNS:
-        if column not in header:
+        if column not in counts:
             problems.append(Problem("header", _missing_column_message(column, header, text,
                                                                       delimiter)))
-    duplicated = sorted({c for c in header if header.count(c) > 1})
+    duplicated = sorted(c for c, count in counts.items() if count > 1)
     if duplicated:
         problems.append(Problem("header", f"repeated column(s): {', '.join(duplicated)}"))
     return problems
@@ -299,7 +342,8 @@ def write_observations_csv(rows: list[dict[str, object]]) -> str:
 
     The layout is the one :func:`read_observations_csv` reads: ``date,arm,source,entered`` then
     ``NAME.n,NAME.sum,NAME.sum_sq`` per metric (sorted by name); a metric absent on a row
-    leaves its three cells empty.
+    leaves its three cells empty. Arm and source cells that a spreadsheet would run as a
+    formula are escaped (:func:`neutralise_cell`); the reader undoes it.
     """
     names = sorted({name for row in rows for name in (row.get("metrics") or {})})  # type: ignore[union-attr]
     header = ["date", "arm", "source", "entered"]
@@ -312,7 +356,8 @@ def write_observations_csv(rows: list[dict[str, object]]) -> str:
     writer.writerow(header)
     for row in rows:
         metrics: dict[str, dict[str, object]] = row.get("metrics") or {}  # type: ignore[assignment]
-        cells = [row["date"], row["arm"], row["source"], row["entered"]]
+        cells = [row["date"], neutralise_cell(str(row["arm"])),
+                 neutralise_cell(str(row["source"])), row["entered"]]
         for name in names:
             stats = metrics.get(name)
             cells += ([repr_number(stats[s]) for s in ("n", "sum", "sum_sq")] if stats

@@ -18,7 +18,13 @@ from msgspec import UNSET
 from pydantic import TypeAdapter, ValidationError
 from sqlalchemy.orm import Session
 
-from detectors.data import STAT_FIELDS, records_to_frame, validate_frame
+from detectors.data import (
+    MAX_METRICS,
+    MAX_UNITS,
+    STAT_FIELDS,
+    records_to_frame,
+    validate_frame,
+)
 from detectors.errors import InputError, Problem
 
 from .csvio import read_csv_rows
@@ -144,7 +150,10 @@ def _plain_rows(body: bytes, max_rows: int) -> pd.DataFrame | None:
         "date": [row.date for row in rows], "arm": [row.arm for row in rows],
         "source": [None if row.source is UNSET else row.source for row in rows],
         "entered": [row.entered for row in rows]}
-    for name in dict.fromkeys(name for cells in metrics for name in cells):
+    names = list(dict.fromkeys(name for cells in metrics for name in cells))
+    if len(names) > MAX_METRICS:
+        return None  # the strict path names the limit
+    for name in names:
         stats = [cells.get(name) for cells in metrics]
         columns[f"{name}.n"] = [None if s is None else s.n for s in stats]
         columns[f"{name}.sum"] = [None if s is None else s.sum for s in stats]
@@ -198,6 +207,21 @@ def upsert_rows(session: Session, experiment: Experiment, rows: ObservationColum
     experiment's write lock (``service.db.locks``).
     """
     return upsert_observations(session, experiment.id, rows, utcnow())
+
+
+def check_experiment_limits(rows: ObservationColumns) -> None:
+    """Raise InputError when an experiment's rows (stored and uploaded together) exceed what
+    it may hold: :data:`MAX_METRICS` metrics and :data:`MAX_UNITS` units in all."""
+    problems: list[Problem] = []
+    if len(rows.metrics) > MAX_METRICS:
+        problems.append(Problem("metrics", f"the experiment would carry {len(rows.metrics)} "
+                                f"metrics; at most {MAX_METRICS} are accepted per experiment"))
+    total = float(np.sum(rows.entered, dtype=np.float64))  # float64: int64 could wrap
+    if total > MAX_UNITS:
+        problems.append(Problem("entered", f"the experiment would hold {total:,.0f} units; at "
+                                f"most {MAX_UNITS:,} (10^12) are accepted in all"))
+    if problems:
+        raise InputError(problems)
 
 
 def _columns(raw: pd.DataFrame, clean: pd.DataFrame, names: Sequence[str]

@@ -18,8 +18,11 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.exc import DBAPIError, DisconnectionError, InterfaceError, OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeoutError
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from detectors.errors import InputError, Problem, UndefinedEstimateError
+
+from .request_budget import RequestAbandonedError
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 MAX_LISTED_ERRORS = 1000
@@ -224,14 +227,37 @@ def _input_handler(request: Request, exc: Exception) -> JSONResponse:
     return input_error_response(request, exc)
 
 
+# PostgreSQL SQLSTATEs after which the same request may well succeed: connection exception
+# (08), insufficient resources (53: too many connections, disk full), operator intervention
+# (57: a statement timeout, a server shutting down or starting), and serialisation failures,
+# deadlocks and lock timeouts. Anything else (a limit exceeded, a bad statement) fails again.
+_TRANSIENT_SQLSTATE_CLASSES = ("08", "53", "57")
+_TRANSIENT_SQLSTATES = frozenset({"40001", "40P01", "55P03"})
+# SQLite primary result codes of the same kind: locked past the busy timeout, interrupted (the
+# statement timeout), the file unreadable, unopenable or full.
+_TRANSIENT_SQLITE_CODES = frozenset({5, 6, 9, 10, 13, 14, 15})
+
+
 def database_unavailable(exc: BaseException) -> bool:
-    """Whether ``exc`` says the database cannot be used right now (retrying may succeed):
-    unreachable, refusing connections, locked past the busy timeout, a dropped connection,
-    or no pooled connection free in time."""
-    if isinstance(exc, OperationalError | InterfaceError | DisconnectionError
-                  | PoolTimeoutError):
+    """Whether ``exc`` says the database cannot be used right now, so that retrying later may
+    succeed (answered 503 with ``Retry-After``): unreachable, refusing connections, locked or
+    busy past a timeout, a dropped connection, no pooled connection free in time. An error
+    the same request would meet again (too many columns, a limit, a bug) is not."""
+    if isinstance(exc, DisconnectionError | PoolTimeoutError | InterfaceError):
         return True
-    return isinstance(exc, DBAPIError) and bool(exc.connection_invalidated)
+    if not isinstance(exc, DBAPIError):
+        return False
+    if exc.connection_invalidated:
+        return True
+    cause = exc.orig
+    sqlstate = getattr(cause, "sqlstate", None)  # psycopg
+    if isinstance(sqlstate, str):
+        return sqlstate[:2] in _TRANSIENT_SQLSTATE_CLASSES or sqlstate in _TRANSIENT_SQLSTATES
+    code = getattr(cause, "sqlite_errorcode", None)  # sqlite3
+    if isinstance(code, int):
+        return code & 0xFF in _TRANSIENT_SQLITE_CODES
+    # No code: the driver's own failure to reach the server (psycopg's connection errors).
+    return isinstance(exc, OperationalError)
 
 
 def _database_handler(request: Request, exc: Exception) -> JSONResponse:
@@ -246,6 +272,13 @@ def _database_handler(request: Request, exc: Exception) -> JSONResponse:
                             "written. Retry shortly.", headers={"Retry-After": RETRY_AFTER})
 
 
+def _abandoned_handler(request: Request, exc: Exception) -> JSONResponse:
+    # The client may be gone (then nobody reads this), or the request ran past its budget.
+    logger.warning("request stopped on %s %s: %s", request.method, request.url.path, exc)
+    return problem_response(request, 503, f"The request was stopped: {exc}; nothing was "
+                            "written. Retry shortly.", headers={"Retry-After": RETRY_AFTER})
+
+
 def _unexpected_handler(request: Request, exc: Exception) -> JSONResponse:
     logger.exception("unhandled error on %s %s", request.method, request.url.path,
                      exc_info=exc)
@@ -253,11 +286,46 @@ def _unexpected_handler(request: Request, exc: Exception) -> JSONResponse:
                             "written. The error has been logged.")
 
 
+class UnexpectedErrorMiddleware:
+    """Answers an exception that no handler took with the 500 problem document, instead of
+    letting it reach the server: Starlette's outermost layer re-raises it after answering, and
+    uvicorn then drops the connection, so the client's next request on that keep-alive
+    connection met a reset. When a response had started already, only closing the connection
+    can end it, and the exception goes on to the server."""
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        started = False
+
+        async def tracking_send(message: Message) -> None:
+            nonlocal started
+            started = started or message["type"] == "http.response.start"
+            await send(message)
+
+        try:
+            await self.app(scope, receive, tracking_send)
+        except Exception as exc:
+            if started:
+                raise
+            request = Request(scope)
+            response = (_abandoned_handler(request, exc)
+                        if isinstance(exc, RequestAbandonedError)
+                        else _database_handler(request, exc) if database_unavailable(exc)
+                        else _unexpected_handler(request, exc))
+            await response(scope, receive, send)
+
+
 def install_problem_handlers(app: FastAPI) -> None:
     app.add_exception_handler(RequestValidationError, _validation_handler)
     app.add_exception_handler(StarletteHTTPException, _http_handler)
     app.add_exception_handler(ProblemError, _problem_handler)
     app.add_exception_handler(InputError, _input_handler)
+    app.add_exception_handler(RequestAbandonedError, _abandoned_handler)
     for unavailable in (DBAPIError, DisconnectionError, PoolTimeoutError):
         app.add_exception_handler(unavailable, _database_handler)
     app.add_exception_handler(Exception, _unexpected_handler)
