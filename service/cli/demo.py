@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from . import EXIT_FAILURE, EXIT_OK
-from .report import format_diagnosis, format_reweighting, paragraph
+from .report import format_diagnosis, format_reweighting, labelled, paragraph
 
 if TYPE_CHECKING:  # httpx, pandas and the scenario load when the demo runs, not for --help
     import httpx
@@ -195,7 +195,7 @@ def _show(client: httpx.Client) -> None:
     open_items = [a for a in items if a["status"] == "open"]
     print(f"Alert history: {len(items)} alerts, {len(open_items)} open")
     for alert in items[:12]:
-        print("\n".join(paragraph(f"{alert['status']:<12} {alert['title']}")))
+        print("\n".join(labelled(alert["status"], alert["title"])))
     reweighting = _check(client.post(f"/v1/experiments/{experiment}/reweight", json={
         "metric": "routes_saved", "target": "reference_arm", "by": ["source", "window"]}))
     print()

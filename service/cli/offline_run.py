@@ -14,6 +14,7 @@ import argparse
 import datetime as dt
 import difflib
 import json
+import re
 import sys
 import textwrap
 from collections.abc import Callable, Sequence
@@ -179,7 +180,8 @@ def load(args: argparse.Namespace) -> Loaded:
     notes: list[str] = []
     if rows.delimiter != ",":
         notes.append(f"read as {rows.delimiter_name}-separated.")
-    notes += [f"{p.message.replace('unknown column', 'column', 1)} (the column is not used)."
+    notes += [re.sub(r"^unknown column ('.*?'|\".*?\"): ", r"column \1 is not used: ",
+                     p.message).rstrip(".") + ("" if p.message.endswith("?") else ".")
               for p in rows.unused]
     frame, positions = _trimmed(rows.frame, options, notes)
     try:

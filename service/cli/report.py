@@ -69,6 +69,14 @@ def paragraph(text: str, *, indent: str = "  ", width: int | None = None) -> lis
                          subsequent_indent=indent, break_on_hyphens=False)
 
 
+def labelled(label: str, text: str, *, indent: str = "  ", label_width: int = 12,
+             width: int | None = None) -> list[str]:
+    """``text`` after a fixed-width ``label``, continuation lines aligned under the text."""
+    head = f"{indent}{label:<{label_width}} "
+    return textwrap.wrap(text, width or wrap_width(), initial_indent=head,
+                         subsequent_indent=" " * len(head), break_on_hyphens=False)
+
+
 def bullets(items: Iterable[str], *, indent: str = "  ", width: int | None = None
             ) -> list[str]:
     lines: list[str] = []

@@ -188,7 +188,7 @@ def test_a_file_without_sources_or_with_gaps_is_analysed_with_notes(
     assert status == 0, err
     assert "no source column: every row counts as 'unattributed'" in text
     assert "no rows for 1 day (2026-03-03)" in text
-    assert "column 'country'" in text and "not used" in text
+    assert "column 'country' is not used: columns are date, arm, source" in text
     assert "unattributed" in out
 
 
