@@ -22,6 +22,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
         "analyze", help="diagnose a CSV of daily per-arm, per-source entries",
         description="Run the SRM, window scan, source and changepoint tests on a CSV file.")
     _common(analyze)
+    analyze.add_argument("--html", type=Path, metavar="FILE",
+                         help="also write a self-contained HTML report with charts to FILE")
     analyze.set_defaults(handler=run_analyze)
 
     rew = subparsers.add_parser(
@@ -77,6 +79,22 @@ def run_analyze(args: argparse.Namespace) -> int:
     except InputError as error:
         return _bad_input(error)
     _print(document, args.json, lambda doc: format_diagnosis(doc, result))
+    if args.html is not None:
+        return _write_html(args.html, table, schedule, result, document, args.file.stem)
+    return EXIT_OK
+
+
+def _write_html(path: Path, table: ObservationTable, schedule: AllocationSchedule,
+                result: Any, document: dict[str, Any], name: str) -> int:
+    from ..pages.report_html import analysis_report, write_report
+
+    try:
+        write_report(path, analysis_report(table, schedule, result, document, name=name))
+    except OSError as error:
+        print(f"inrush: cannot write the HTML report to {path}: {error.strerror or error}",
+              file=sys.stderr)
+        return EXIT_BAD_INPUT
+    print(f"inrush: HTML report written to {path}", file=sys.stderr)
     return EXIT_OK
 
 
