@@ -33,9 +33,9 @@ from ..traffic import sensitivity_document, stored_arm_traffic, thresholds_of
 from . import assets
 from .export import series_csv
 from .render import (
+    pick_metric,
     render_experiment_page,
     render_index_page,
-    pick_metric,
     render_not_found,
     render_token_page,
 )
