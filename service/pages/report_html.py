@@ -26,6 +26,7 @@ from .render import environment, experiment_context
 if TYPE_CHECKING:
     from detectors import AllocationSchedule, Diagnosis, ObservationTable
 
+LICENCES = {"uPlot.iife.min.js": "uPlot.LICENSE"}
 EffectAnswers = Mapping[str, tuple[Mapping[str, Any] | None, str | None]]
 
 
@@ -45,7 +46,7 @@ def render_report(*, experiment: Mapping[str, Any], diagnosis: Mapping[str, Any]
         csv_href="data:text/csv;charset=utf-8;base64," + base64.b64encode(csv_bytes).decode(),
         # Shipped files, not user text: inlined as they are.
         inline_css=Markup("\n".join(asset(name).text for name in STYLESHEETS)),
-        inline_scripts=[_inline_script(asset(name).text) for name in SCRIPTS],
+        inline_scripts=[_inline_script(_with_licence(name)) for name in SCRIPTS],
         written_at=written_at.isoformat(), source_name=source_name,
         version_text=_version(), links={})
     return environment().get_template("report.html").render(**context)
@@ -92,6 +93,14 @@ def write_report(path: Path, html: str) -> None:
     except BaseException:
         Path(temporary).unlink(missing_ok=True)
         raise
+
+
+def _with_licence(name: str) -> str:
+    """A shipped script; the vendored library with its licence notice, as MIT asks."""
+    licence = LICENCES.get(name)
+    if licence is None:
+        return asset(name).text
+    return f"/*! {asset(licence).text.strip()} */\n{asset(name).text}"
 
 
 def _inline_script(code: str) -> Markup:
