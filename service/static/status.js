@@ -108,10 +108,11 @@
     return {
       width: width, height: height,
       tzDate: function (ts) { return uPlot.tzDate(new Date(ts * 1000), "Etc/UTC"); },
-      // Half a day of margin on either side, so the first and last days' bands show whole.
-      scales: { x: { time: true, auto: false,
-                     range: [xs[0] - HALF, xs[xs.length - 1] + HALF] } },
-      cursor: { sync: { key: "inrush", setSeries: false }, drag: { x: true, y: false } },
+      scales: { x: { time: true } },
+      cursor: { sync: { key: "inrush", setSeries: false }, drag: { x: true, y: false },
+                // Double-click shows every day, with the half-day margins of zoomAll.
+                bind: { dblclick: function () {
+                  return function () { zoomAll(); return null; }; } } },
       legend: { live: true },
       series: [{ label: "Day", value: dayLabel }].concat(ySeries),
       axes: [
@@ -207,10 +208,13 @@
 
   // ---- date range -------------------------------------------------------------------------
   var range = document.getElementById("range");
+  // The days shown: those whose midnight falls inside the scale's range.
+  function firstDay(min) { return isoDay(Math.ceil(min / DAY) * DAY); }
+  function lastDay(max) { return isoDay(Math.floor(max / DAY) * DAY); }
   function showRange(min, max) {
     if (!range) { return; }
-    range.elements.from.value = isoDay(Math.round((min + HALF) / DAY) * DAY);
-    range.elements.to.value = isoDay(Math.round((max - HALF) / DAY) * DAY);
+    range.elements.from.value = firstDay(min);
+    range.elements.to.value = lastDay(max);
   }
   function zoom(min, max) {
     if (!charts.length) { return; }
@@ -257,9 +261,8 @@
     ctx.fillRect(0, 0, out.width, out.height);
     ctx.fillStyle = INK;
     ctx.font = "bold " + 14 * r + "px 'DejaVu Sans', sans-serif";
-    ctx.fillText(entry.title + " (" + isoDay(Math.round((u.scales.x.min + HALF) / DAY) * DAY) +
-                 " to " + isoDay(Math.round((u.scales.x.max - HALF) / DAY) * DAY) + ")",
-                 pad, pad + 14 * r);
+    ctx.fillText(entry.title + " (" + firstDay(u.scales.x.min) + " to " +
+                 lastDay(u.scales.x.max) + ")", pad, pad + 14 * r);
     ctx.drawImage(src, pad, head);
     ctx.font = 11 * r + "px 'DejaVu Sans', sans-serif";
     shown.forEach(function (s, i) {
@@ -311,6 +314,9 @@
   var picker = document.getElementById("metric-picker");
   function showMetric(metric) {
     data.metric = metric;
+    document.querySelectorAll("[data-metric-label]").forEach(function (el) {
+      el.textContent = metric;
+    });
     document.querySelectorAll("[data-metric-section]").forEach(function (el) {
       el.hidden = el.getAttribute("data-metric-section") !== metric;
     });
@@ -356,7 +362,8 @@
   var entrantsBox = document.querySelector("[data-chart=entrants]");
   if (entrantsBox) { entrantsCharts(entrantsBox); }
   if (data.metric) { showMetric(data.metric); }
-  showRange(xs[0] - HALF, xs[xs.length - 1] + HALF);
+  // Half a day of margin on either side, so the first and last days' bands show whole.
+  zoomAll();
 
   var resizing = null;
   window.addEventListener("resize", function () {

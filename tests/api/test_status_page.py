@@ -7,7 +7,7 @@ import re
 from typing import Any
 
 import pandas as pd
-from apihelpers import EXPERIMENT, demo_csv_text, upload_csv
+from apihelpers import EXPERIMENT, demo_csv_text, two_metric_demo_csv, upload_csv
 
 
 def login(anonymous: Any, token: str, path: str = "/experiments/route-cards") -> Any:
@@ -111,19 +111,10 @@ def test_page_without_data_says_so(client: Any) -> None:
     assert "<svg" not in html
 
 
-def two_metric_csv() -> str:
-    """The demo export with a second metric (minutes on trail, scaled from routes saved)."""
-    frame = pd.read_csv(io.StringIO(demo_csv_text()))
-    frame["trail_minutes.n"] = frame["routes_saved.n"]
-    frame["trail_minutes.sum"] = frame["routes_saved.sum"] * 12.0
-    frame["trail_minutes.sum_sq"] = frame["routes_saved.sum_sq"] * 144.0
-    return frame.to_csv(index=False)
-
-
 def test_metric_query_picks_the_chart_and_the_effect_and_the_files_are_served(
         client: Any, anonymous: Any, token_for: Any) -> None:
     client.post("/v1/experiments", json=EXPERIMENT)
-    upload_csv(client, two_metric_csv())
+    upload_csv(client, two_metric_demo_csv())
     expected = client.post("/v1/experiments/route-cards/reweight", json={
         "metric": "trail_minutes", "target": "reference_arm", "by": ["source", "window"]}).json()
     series = client.get("/v1/experiments/route-cards/series").json()

@@ -12,6 +12,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from apihelpers import two_metric_demo_csv
 
 from service.cli import main
 from service.demo import scenario
@@ -20,13 +21,8 @@ from service.pages.export import series_csv
 
 @pytest.fixture(scope="module")
 def two_metric_csv(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """The demo export with a second metric (minutes on trail, scaled from routes saved)."""
-    frame = pd.read_csv(scenario.CSV_PATH)
-    frame["trail_minutes.n"] = frame["routes_saved.n"]
-    frame["trail_minutes.sum"] = frame["routes_saved.sum"] * 12.0
-    frame["trail_minutes.sum_sq"] = frame["routes_saved.sum_sq"] * 144.0
     path = tmp_path_factory.mktemp("report") / "route_cards.csv"
-    frame.to_csv(path, index=False)
+    path.write_text(two_metric_demo_csv(), encoding="utf-8")
     return path
 
 
@@ -47,7 +43,7 @@ def test_report_refers_to_nothing_outside_itself(report: str) -> None:
     assert targets, "the report has links (the CSV) and SVG references"
     assert all(t.startswith(("data:", "#")) for t in targets), [
         t for t in targets if not t.startswith(("data:", "#"))]
-    assert "<link" not in report and "@import" not in report
+    assert not re.search(r'<link\b(?![^>]*href="data:)', report) and "@import" not in report
     assert not re.search(r"url\(\s*['\"]?(?!data:|#)", report)
     # The charting library and the page script travel inside the file.
     assert report.count("<script>") == 2 and "uPlot" in report
