@@ -7,6 +7,9 @@ import json
 import re
 from typing import Any
 
+import pytest
+
+from service import charts
 from service.demo import scenario
 from service.pages.render import (
     format_span,
@@ -83,6 +86,15 @@ def page_data(html: str) -> dict[str, Any]:
     return json.loads(block.group(1))
 
 
+@pytest.fixture
+def quick_charts(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Daily charts as empty SVGs: these tests are about the page around them (the charts
+    have their own tests), and drawing them is most of a render's time."""
+    for name in ("share_chart", "entrants_chart"):
+        monkeypatch.setattr(charts, name, lambda series: "<svg></svg>")
+    monkeypatch.setattr(charts, "engagement_chart", lambda series, metric: "<svg></svg>")
+
+
 def incident(**changes: Any) -> dict[str, Any]:
     """An incident as the service serves it: ``Episode.to_dict()`` plus the stored fields."""
     base = {
@@ -110,7 +122,8 @@ def incident(**changes: Any) -> dict[str, Any]:
     return {**base, **changes}
 
 
-def test_incidents_lead_the_page_with_shape_arm_days_units_sources_and_advice() -> None:
+def test_incidents_lead_the_page_with_shape_arm_days_units_sources_and_advice(
+        quick_charts: None) -> None:
     documents = demo_documents()
     diagnosis = copy.deepcopy(documents.diagnosis)
     shortfall = incident(id=9, shape="shortfall", arm="control", start="2026-11-15",
@@ -145,7 +158,7 @@ def test_incidents_lead_the_page_with_shape_arm_days_units_sources_and_advice() 
     assert html.index('id="incidents"') < html.index('id="shares"') < html.index('id="effect"')
 
 
-def test_a_diagnosis_without_incidents_member_shows_no_incident_claim() -> None:
+def test_a_diagnosis_without_incidents_member_shows_no_incident_claim(quick_charts: None) -> None:
     documents = demo_documents()
     diagnosis = {k: v for k, v in documents.diagnosis.items() if k != "incidents"}
     html = render_experiment_page(experiment=EXPERIMENT, diagnosis=diagnosis,
@@ -157,7 +170,7 @@ def test_a_diagnosis_without_incidents_member_shows_no_incident_claim() -> None:
     assert "No incident" in empty
 
 
-def test_effect_shows_naive_honest_and_bounds_side_by_side_with_signs() -> None:
+def test_effect_shows_naive_honest_and_bounds_side_by_side_with_signs(quick_charts: None) -> None:
     documents = demo_documents()
     effect = copy.deepcopy(documents.effect)
     naive = effect["comparisons"][0]["naive"]
@@ -186,7 +199,7 @@ def test_effect_shows_naive_honest_and_bounds_side_by_side_with_signs() -> None:
     assert "bounds: any mix of the added units" in section  # drawn in the effect chart
 
 
-def test_metric_choice_honours_the_query_and_says_when_it_cannot() -> None:
+def test_metric_choice_honours_the_query_and_says_when_it_cannot(quick_charts: None) -> None:
     assert pick_metric(["routes_saved", "trail_minutes"], "trail_minutes") == (
         "trail_minutes", None)
     chosen, note = pick_metric(["routes_saved", "trail_minutes"], "Trail_Minutes")
@@ -199,7 +212,7 @@ def test_metric_choice_honours_the_query_and_says_when_it_cannot() -> None:
     assert '<option value="routes_saved" selected>' in html
 
 
-def test_freshness_line_and_day_spans() -> None:
+def test_freshness_line_and_day_spans(quick_charts: None) -> None:
     documents = demo_documents()
     html = render_experiment_page(experiment=EXPERIMENT, diagnosis=documents.diagnosis,
                                   series=documents.series, alerts=[], diagnosis_version=3,
