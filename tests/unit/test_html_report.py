@@ -65,9 +65,11 @@ def test_report_carries_the_charts_the_data_and_every_metric(report: str) -> Non
                   "Entrant engagement per arm: routes_saved",
                   "Entrant engagement per arm: trail_minutes"):
         assert title in report
-    # One effect section per metric, the first shown and the other hidden until picked.
+    # One effect section per metric, all shown without JavaScript (the script shows the
+    # picked one only), and the picker, which needs the script in a file, hidden without it.
     assert 'data-metric-section="routes_saved">' in report
-    assert 'data-metric-section="trail_minutes" hidden>' in report
+    assert 'data-metric-section="trail_minutes">' in report
+    assert '<form id="metric-picker" method="get" class="js-only">' in report
     assert "naive, honest estimate and bounds" in report
     # The CSV link holds the series of the data block, which adds up to the input file.
     link = re.search(r'href="data:text/csv;charset=utf-8;base64,([^"]+)"', report)
