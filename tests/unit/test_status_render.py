@@ -220,6 +220,14 @@ def test_freshness_line_and_day_spans(quick_charts: None) -> None:
     line = html.split('id="freshness"', 1)[1].split("</p>", 1)[0]
     assert f"Data up to <strong>{documents.diagnosis['as_of']}</strong>" in line
     assert "refreshed at <strong>2026-11-23 07:05 UTC</strong>" in line and "version 3" in line
+    campaign = {"name": "November trail digest", "source": "newsletter", "start": "2026-11-09",
+                "end": "2026-11-10", "audience": {"control": 0.0, "cards": 0.4},
+                "check": {"balanced": False, "warnings": ["unbalanced", "Only cards gets it."]}}
+    html = render_experiment_page(experiment=EXPERIMENT, diagnosis=documents.diagnosis,
+                                  series=documents.series, alerts=[], campaigns=[campaign])
+    # Campaign days on one line, however narrow the column.
+    assert '<td class="when">2026-11-09 to 11-10</td>' in html
+    assert re.search(r"td\.when \{ white-space: nowrap; \}", html)
     assert format_span("2026-11-03", "2026-11-05") == "2026-11-03 to 11-05"
     assert format_span("2026-12-30", "2027-01-02") == "2026-12-30 to 2027-01-02"
     assert format_span("2026-11-03", None) == "2026-11-03"
