@@ -128,10 +128,13 @@
 
   function look(i) { return palette[i % palette.length]; }
 
-  function mount(box, options, columns, title, file) {
+  function mount(box, options, columns, title, group, panel) {
     box.textContent = "";
     var plot = new uPlot(options, columns, box);
-    var entry = { plot: plot, box: box, title: title, file: file };
+    var keys = options.series.slice(1).map(function (s) {
+      return { label: s.label, color: s.stroke, dash: s.dash || [] };
+    });
+    var entry = { plot: plot, box: box, title: title, group: group, panel: panel, keys: keys };
     charts.push(entry);
     return entry;
   }
@@ -153,7 +156,7 @@
     });
     var options = baseOptions(width(box), 280, ys, function (v) {
       return (100 * v).toFixed(0) + "%"; }, "Share of the day's units");
-    mount(box, options, columns, "Arm shares against the plan", "arm-shares");
+    mount(box, options, columns, "Arm shares against the plan", "arm-shares", "");
   }
 
   function entrantsCharts(box) {
@@ -184,8 +187,7 @@
       var options = baseOptions(width(box), 200, ys, function (v) { return grouped(v, 0); },
                                 "Units entered");
       options.scales.y = { range: [0, Math.max(1, top * 1.05)] };
-      mount(plotBox, options, columns, "Entrants per source, arm " + arm,
-            "entrants-" + arm);
+      mount(plotBox, options, columns, "Entrants per source and arm", "entrants", "arm " + arm);
     });
   }
 
@@ -202,8 +204,7 @@
       }));
     });
     var options = baseOptions(width(box), 260, ys, rounded, "Mean " + metric + " per entrant");
-    mount(box, options, columns, "Entrant engagement per arm: " + metric,
-          "engagement-" + metric);
+    mount(box, options, columns, "Entrant engagement per arm: " + metric, "engagement", "");
   }
 
   // ---- date range -------------------------------------------------------------------------
@@ -246,43 +247,57 @@
     setTimeout(function () { URL.revokeObjectURL(link.href); link.remove(); }, 1000);
   }
 
-  // The plot's canvas (axes included) under a title, with the series key below it.
-  function pngOf(entry) {
-    var u = entry.plot, src = u.ctx.canvas, r = uPlot.pxRatio || 1;
-    var pad = 12 * r, head = 30 * r, line = 20 * r;
-    var shown = u.series.slice(1).filter(function (s) { return s.show; });
-    var perRow = Math.max(1, Math.floor(src.width / (190 * r)));
-    var rows = Math.ceil(shown.length / perRow);
+  // The plots' canvases (axes included) under a title, one below the other with their panel
+  // names, and the series key below them: one picture of what is on screen.
+  function pngOf(entries) {
+    var r = uPlot.pxRatio || 1, pad = 12 * r, head = 30 * r, sub = 20 * r, line = 20 * r;
+    var first = entries[0].plot;
+    var widest = Math.max.apply(null, entries.map(function (e) { return e.plot.ctx.canvas.width; }));
+    var keys = entries[0].keys.filter(function (k, i) { return first.series[i + 1].show; });
+    var perRow = Math.max(1, Math.floor(widest / (190 * r)));
+    var rows = Math.ceil(keys.length / perRow);
+    var panels = entries.length > 1;
+    var height = head + rows * line + 2 * pad;
+    entries.forEach(function (e) { height += e.plot.ctx.canvas.height + (panels ? sub : 0); });
     var out = document.createElement("canvas");
-    out.width = src.width + 2 * pad;
-    out.height = head + src.height + rows * line + 2 * pad;
+    out.width = widest + 2 * pad;
+    out.height = height;
     var ctx = out.getContext("2d");
     ctx.fillStyle = PAPER;
     ctx.fillRect(0, 0, out.width, out.height);
     ctx.fillStyle = INK;
     ctx.font = "bold " + 14 * r + "px 'DejaVu Sans', sans-serif";
-    ctx.fillText(entry.title + " (" + firstDay(u.scales.x.min) + " to " +
-                 lastDay(u.scales.x.max) + ")", pad, pad + 14 * r);
-    ctx.drawImage(src, pad, head);
+    ctx.fillText(entries[0].title + " (" + firstDay(first.scales.x.min) + " to " +
+                 lastDay(first.scales.x.max) + ")", pad, pad + 14 * r);
+    var y = head;
+    entries.forEach(function (e) {
+      if (panels) {
+        ctx.font = "bold " + 12 * r + "px 'DejaVu Sans', sans-serif";
+        ctx.fillText(e.panel, pad, y + 14 * r);
+        y += sub;
+      }
+      ctx.drawImage(e.plot.ctx.canvas, pad, y);
+      y += e.plot.ctx.canvas.height;
+    });
     ctx.font = 11 * r + "px 'DejaVu Sans', sans-serif";
-    shown.forEach(function (s, i) {
-      var x = pad + (i % perRow) * 190 * r, y = head + src.height + pad + Math.floor(i / perRow) * line;
-      ctx.strokeStyle = s._stroke || s.stroke || INK;
+    keys.forEach(function (k, i) {
+      var x = pad + (i % perRow) * 190 * r, ky = y + pad + Math.floor(i / perRow) * line;
+      ctx.strokeStyle = k.color;
       ctx.lineWidth = 2 * r;
-      ctx.setLineDash((s.dash || []).map(function (d) { return d * r; }));
-      ctx.beginPath(); ctx.moveTo(x, y); ctx.lineTo(x + 24 * r, y); ctx.stroke();
+      ctx.setLineDash(k.dash.map(function (d) { return d * r; }));
+      ctx.beginPath(); ctx.moveTo(x, ky); ctx.lineTo(x + 24 * r, ky); ctx.stroke();
       ctx.setLineDash([]);
       ctx.fillStyle = INK;
-      ctx.fillText(s.label, x + 30 * r, y + 4 * r);
+      ctx.fillText(k.label, x + 30 * r, ky + 4 * r);
     });
     return out;
   }
 
   function exportPng(name) {
-    var picked = charts.filter(function (c) { return c.file.indexOf(name) === 0; });
-    picked.forEach(function (entry) {
-      pngOf(entry).toBlob(function (blob) { download(blob, slug + "-" + entry.file + ".png"); });
-    });
+    var picked = charts.filter(function (c) { return c.group === name; });
+    if (!picked.length) { return; }
+    var file = name === "engagement" ? name + "-" + data.metric : name;
+    pngOf(picked).toBlob(function (blob) { download(blob, slug + "-" + file + ".png"); });
   }
 
   function exportSvg(button) {

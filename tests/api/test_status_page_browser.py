@@ -148,6 +148,14 @@ def test_hover_zoom_export_and_metric_picker(server: dict[str, Any], browser: An
     data = Path(png.value.path()).read_bytes()
     assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 5000
     assert png.value.suggested_filename == "route-cards-arm-shares.png"
+    # The entrants' panels, one per arm, come as one picture.
+    with page.expect_download() as panels:
+        page.click("#entrants [data-png]")
+    assert panels.value.suggested_filename == "route-cards-entrants.png"
+    height = image.imread(panels.value.path(), format="png").shape[0]
+    stacked = page.evaluate("[...document.querySelectorAll('#entrants canvas')]"
+                            ".reduce((sum, c) => sum + c.height, 0)")
+    assert page.locator("#entrants canvas").count() == 2 and height > stacked
     with page.expect_download() as svg:
         page.click("#shares [data-svg-button]")
     root = ET.fromstring(Path(svg.value.path()).read_bytes())
