@@ -254,6 +254,10 @@
     var first = entries[0].plot;
     var widest = Math.max.apply(null, entries.map(function (e) { return e.plot.ctx.canvas.width; }));
     var keys = entries[0].keys.filter(function (k, i) { return first.series[i + 1].show; });
+    ["alert", "watch"].forEach(function (level) {
+      var any = Object.keys(flags).some(function (key) { return flags[key] === level; });
+      if (any) { keys.push({ label: "flagged day (" + level + ")", tile: tiles[level] }); }
+    });
     var perRow = Math.max(1, Math.floor(widest / (190 * r)));
     var rows = Math.ceil(keys.length / perRow);
     var panels = entries.length > 1;
@@ -282,11 +286,16 @@
     ctx.font = 11 * r + "px 'DejaVu Sans', sans-serif";
     keys.forEach(function (k, i) {
       var x = pad + (i % perRow) * 190 * r, ky = y + pad + Math.floor(i / perRow) * line;
-      ctx.strokeStyle = k.color;
-      ctx.lineWidth = 2 * r;
-      ctx.setLineDash(k.dash.map(function (d) { return d * r; }));
-      ctx.beginPath(); ctx.moveTo(x, ky); ctx.lineTo(x + 24 * r, ky); ctx.stroke();
-      ctx.setLineDash([]);
+      if (k.tile) {
+        ctx.fillStyle = ctx.createPattern(k.tile, "repeat");
+        ctx.fillRect(x, ky - 7 * r, 24 * r, 14 * r);
+      } else {
+        ctx.strokeStyle = k.color;
+        ctx.lineWidth = 2 * r;
+        ctx.setLineDash(k.dash.map(function (d) { return d * r; }));
+        ctx.beginPath(); ctx.moveTo(x, ky); ctx.lineTo(x + 24 * r, ky); ctx.stroke();
+        ctx.setLineDash([]);
+      }
       ctx.fillStyle = INK;
       ctx.fillText(k.label, x + 30 * r, ky + 4 * r);
     });
