@@ -2,8 +2,9 @@
 
 They are what a reader without JavaScript sees, the SVG export, and the effect chart; in the
 browser ``static/status.js`` draws the daily charts from the same series with the same
-colours and dashes (:func:`palette`). Every function takes the plain documents the API serves (series, reweight) and returns an
-``<svg>`` element as text; no JavaScript and nothing fetched from elsewhere. The look is
+colours and dashes (:func:`palette`). Every function takes the plain documents the API
+serves (series, reweight) and returns an ``<svg>`` element as text; no JavaScript and nothing
+fetched from elsewhere. The look is
 Inrush's own: deep teal, ochre, slate and brick on a warm paper background. Each series also
 differs by line style and marker, and flagged days by hatching, so the charts read in
 greyscale and for colour-blind readers. Every chart has a title and labelled axes.
