@@ -15,6 +15,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
         "analyze", help="diagnose a CSV of daily per-arm, per-source entries",
         description="Run the SRM, window scan, source and changepoint tests on a CSV file.")
     _common(analyze)
+    analyze.add_argument("--html", type=Path, metavar="FILE",
+                         help="also write a self-contained HTML report with charts to FILE")
     analyze.set_defaults(handler=run_analyze)
 
     rew = subparsers.add_parser(

@@ -84,6 +84,23 @@ def analyze(args: argparse.Namespace) -> int:
     except InputError as error:
         return _bad_input(args, _option_items(error))
     _emit(args, loaded, document, format_diagnosis)
+    if getattr(args, "html", None) is not None:
+        return _write_html(args.html, loaded.table, loaded.schedule, result, document,
+                           args.file.stem)
+    return EXIT_OK
+
+
+def _write_html(path: Path, table: ObservationTable, schedule: AllocationSchedule,
+                result: Any, document: dict[str, Any], name: str) -> int:
+    from ..pages.report_html import analysis_report, write_report
+
+    try:
+        write_report(path, analysis_report(table, schedule, result, document, name=name))
+    except OSError as error:
+        print(f"inrush: cannot write the HTML report to {path}: {error.strerror or error}",
+              file=sys.stderr)
+        return EXIT_BAD_INPUT
+    print(f"inrush: HTML report written to {path}", file=sys.stderr)
     return EXIT_OK
 
 
