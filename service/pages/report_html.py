@@ -54,10 +54,12 @@ def render_report(*, experiment: Mapping[str, Any], diagnosis: Mapping[str, Any]
 
 def analysis_report(table: ObservationTable, schedule: AllocationSchedule, result: Diagnosis,
                     document: Mapping[str, Any], *, name: str) -> str:
-    """The report of an offline analysis: the series and, per metric, the effect re-weighted
-    by source x flagged window to the reference arm's mix (as the status page shows it)."""
-    from detectors import InputError, daily_series, reweight
+    """The report of an offline analysis: the series and, per metric, the honest default
+    effect with its bounds (as the status page shows it)."""
+    from detectors import InputError, daily_series
+    from detectors.contamination import cells_from_document
     from detectors.errors import UndefinedEstimateError
+    from detectors.honest import default_effect
 
     from ..http import json_safe
 
@@ -65,9 +67,9 @@ def analysis_report(table: ObservationTable, schedule: AllocationSchedule, resul
     effects: dict[str, tuple[dict[str, Any] | None, str | None]] = {}
     for metric in table.metrics:
         try:
-            answer = reweight(table, metric, target="reference_arm", by=("source", "window"),
-                              flagged_dates=result.alert_days)
-            effects[metric] = (json_safe(answer.to_dict()), None)
+            answer = default_effect(table, metric, cells_from_document(document), schedule,
+                                    incidents=len(document.get("incidents") or ()))
+            effects[metric] = (json_safe(answer), None)
         except (UndefinedEstimateError, InputError) as error:
             effects[metric] = (None, f"The re-weighted estimate is undefined: {error}")
     dates = series.get("dates") or [None]

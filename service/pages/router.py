@@ -7,7 +7,6 @@ https) and redirects to the same page without the token in the address.
 
 from __future__ import annotations
 
-import datetime as dt
 from typing import Annotated, Any
 from urllib.parse import urlencode
 
@@ -16,10 +15,12 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from detectors import InputError, reweight
+from detectors import InputError
+from detectors.contamination import cells_from_document
 from detectors.errors import UndefinedEstimateError
+from detectors.honest import default_effect
 
-from ..analysis import latest_snapshot, latest_summaries, load_table
+from ..analysis import latest_snapshot, latest_summaries, load_table, schedule_for
 from ..campaigns import campaign_document, stored_campaigns
 from ..db.models import Alert, Experiment
 from ..db.session import get_session
@@ -27,7 +28,6 @@ from ..http import json_safe
 from ..incidents import served_document
 from ..routers.alerts import alert_out
 from ..routers.common import base_url
-from ..routers.reweight import flagged_dates
 from ..settings import Settings
 from ..tokens import Principal, Scope, authenticate
 from ..traffic import sensitivity_document, stored_arm_traffic, thresholds_of
@@ -195,17 +195,17 @@ def series_csv_file(experiment_id: str, request: Request,
 
 def _effect(session: Session, experiment: Experiment, document: dict[str, Any] | None,
             metric: str | None) -> tuple[dict[str, Any] | None, str | None]:
-    """The effect on ``metric``, re-weighted by source x flagged window to the reference
-    arm's mix; or why there is none."""
+    """The effect on ``metric`` as the reweight endpoint answers a call without options (the
+    honest default that leaves the incidents' cells out, with bounds); or why there is none."""
     if document is None or metric is None:
         return None, "No metric has been uploaded, so there is no effect to estimate."
     table = load_table(session, experiment)
     if table is None:
         return None, "No observations are stored."
-    flagged: list[dt.date] = flagged_dates(document)
     try:
-        result = reweight(table, metric, target="reference_arm", by=("source", "window"),
-                          flagged_dates=flagged)
+        answer = default_effect(table, metric, cells_from_document(document),
+                                schedule_for(experiment),
+                                incidents=len(document.get("incidents") or ()))
     except (UndefinedEstimateError, InputError) as error:
         return None, f"The re-weighted estimate is undefined: {error}"
-    return json_safe(result.to_dict()), None
+    return json_safe(answer), None
