@@ -68,7 +68,7 @@ def test_the_payload_leads_with_the_incident_then_the_detail() -> None:
     # One figure: the units are the incident's, the sum of its days.
     assert lead["units"] == pytest.approx(sum(d["units"] for d in data["detail"]["daily"]),
                                           abs=0.2)
-    assert {e["kind"] for e in data["detail"]["evidence"]} >= {"skewed_day", "skewed_source"}
+    assert {e["kind"] for e in data["detail"]["evidence"]} >= {"skewed_window", "skewed_source"}
     assert f"{lead['units']:.0f} units over plan" in data["headline"]
     assert "via newsletter" in data["headline"] and "autumn-trails" in data["headline"]
     assert data["changes"] is None
