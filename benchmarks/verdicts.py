@@ -207,6 +207,11 @@ def cases() -> list[Case]:
         Case("inflow into control, 2 days 15%",
              base.with_inflows(Inflow(0, 8, 2, 0.15, label="partner_link")), None,
              "inflow", "control", (8, 9)),
+        Case("inflow into 1 of 4 arms, organic, 2 days 8%",
+             replace(base, arms=("control", "cards", "map_first", "photo_grid"),
+                     allocation=((0, (0.25, 0.25, 0.25, 0.25)),), lifts=(0.0,) * 4,
+                     daily_units=40_000.0).with_inflows(Inflow(2, 16, 2, 0.08)), None,
+             "inflow", "map_first", (16, 17)),
         Case("trickle, +3% a day more from day 10", base.with_inflows(*_trickle(0.03)), None,
              "inflow", "cards", (10, 27)),
         Case("steady trickle, +3% a day from day 10", base.with_inflows(

@@ -245,7 +245,10 @@ def classify(counts: np.ndarray, planned: np.ndarray, first: int, last: int,
 
     ``counts`` and ``planned`` are ``(days, arms)``; ``in_any_run`` marks days of any episode
     (they are never used as the baseline). Returns ``(shape, arm index)``; ``persistent`` when no
-    day outside the runs is left to compare with.
+    day outside the runs is left to compare with. A step of the split is considered only where
+    one is plausible: within three days of a declared allocation change, or when the run lasts
+    a week or reaches the last day (a split that moved for a day or two and came back is an
+    inflow or a shortfall).
 
     Example:
         >>> c = np.full((21, 2), 1000.0); c[10:12, 1] = 1300            # arm 1 got extra units
@@ -256,7 +259,7 @@ def classify(counts: np.ndarray, planned: np.ndarray, first: int, last: int,
         >>> classify(c, np.full((21, 2), .5), 10, 11, mask)
         ('shortfall', 0)
         >>> c = np.full((21, 2), 1000.0); c[10:12] = [1150, 850]         # the split moved
-        >>> classify(c, np.full((21, 2), .5), 10, 11, mask)
+        >>> classify(c, np.full((21, 2), .5), 10, 11, mask, near_allocation_change=True)
         ('allocation_step', 0)
     """
     span = np.arange(first, last + 1)
@@ -273,10 +276,12 @@ def classify(counts: np.ndarray, planned: np.ndarray, first: int, last: int,
     total_jump = abs(float(np.log(max(totals[span].mean(), 1e-9)
                                   / max(totals[baseline].mean(), 1e-9))))
     n_arms = counts.shape[1]
-    odd_one = np.array([np.median(np.abs(np.delete(jump, k))) for k in range(n_arms)])
-    step_score = total_jump * (0.5 if near_allocation_change else 1.0)
-    arm = int(np.argmin(odd_one))
-    if step_score < odd_one[arm]:
+    # An inflow into (or shortfall from) arm k leaves every other arm's level alone.
+    untouched = np.array([np.abs(np.delete(jump, k)).mean() for k in range(n_arms)])
+    arm = int(np.argmin(untouched))
+    step_plausible = (near_allocation_change or len(span) >= 7
+                      or (last == counts.shape[0] - 1 and len(span) >= 3))
+    if step_plausible and total_jump * (0.5 if near_allocation_change else 1.0) < untouched[arm]:
         return ALLOCATION_STEP, int(np.argmax(relative))
     return (INFLOW if excess[arm] > 0 else SHORTFALL), arm
 

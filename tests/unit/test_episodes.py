@@ -118,6 +118,18 @@ def test_classify_names_the_arm_that_moved() -> None:
     assert classify(gained, planned, 10, 12, mask) == ("inflow", 0)
 
 
+def test_an_unlabelled_inflow_into_one_of_four_arms_names_that_arm() -> None:
+    # Four arms at 25%: the other three arms' levels stay put while one rises; a robust
+    # "median of the others" would let any arm look untouched.
+    four = replace(BASE, arms=("control", "cards", "map_first", "photo_grid"),
+                   allocation=((0, (0.25, 0.25, 0.25, 0.25)),), lifts=(0.0, 0.0, 0.0, 0.0),
+                   daily_units=40_000.0, n_days=60)
+    for seed in (20, 21, 22):
+        _, d = _run(four.with_inflows(Inflow(2, 40, 2, 0.08)), seed)
+        [episode] = d.episodes
+        assert (episode.shape, episode.arm) == ("inflow", "map_first")
+
+
 def test_a_novelty_effect_on_an_outcome_is_context_not_an_incident() -> None:
     sim = simulate(BASE, np.random.default_rng(12))
     cube = sim.table.metrics["routes_saved"].copy()
