@@ -1,5 +1,8 @@
 """Alerts derived from diagnoses: one alert per finding ``(experiment, kind, key)``.
 
+Findings are the evidence of incidents (:mod:`service.incidents`, which calls
+:func:`sync_alerts` and sends the notifications); an alert never notifies on its own.
+
 ``sync_alerts`` is called after every diagnosis. A new finding opens an alert; a finding seen
 again only refreshes it, so re-sending data never repeats an alert. A finding that a later
 diagnosis no longer contains resolves its open or acknowledged alert on the service's behalf,
@@ -195,6 +198,12 @@ def _why_gone(alert: Alert, diagnosis: Diagnosis | None) -> str:
         return (f"the whole-period arm counts match the allocation at the alert level "
                 f"p < {alpha:g} (chi-square p = {_p(diagnosis.srm.p_value)}, anytime-valid "
                 f"p = {_p(diagnosis.srm.sequential_p_value)})")
+    if alert.kind == "skewed_window":
+        return (f"no window of days over {alert.key} reaches the alert level of the lifetime "
+                f"window scan (p < {diagnosis.config.scan_alpha:g}) any more")
+    if alert.kind == "share_change":
+        return (f"the change detector no longer finds a change of the arm shares from "
+                f"{alert.key} at its alert level (p < {diagnosis.config.change_alpha:g})")
     if alert.kind == "skewed_day":
         day = next((d for d in diagnosis.flagged_days if d.date.isoformat() == alert.key), None)
         if day is not None:

@@ -2,7 +2,8 @@
 
 Two kinds of metric, each safe with several worker processes or replicas:
 
-* Per-experiment gauges (``inrush_open_alerts``, ``inrush_srm_p_value``,
+* Per-experiment gauges (``inrush_open_incidents``, ``inrush_open_alerts``,
+  ``inrush_srm_p_value``,
   ``inrush_flagged_days``, ``inrush_last_data_date_seconds``, label ``experiment``) are read
   from the database at scrape time by a custom collector, so every worker answers the same.
 * Request metrics (``inrush_http_requests_total``, ``inrush_http_request_duration_seconds``,
@@ -39,6 +40,7 @@ from sqlalchemy import func, select
 from sqlalchemy.exc import SQLAlchemyError
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
+from .db.incident_models import Incident
 from .db.models import Alert, DiagnosisSnapshot, Experiment
 from .db.session import Database
 from .problems import ProblemError
@@ -126,6 +128,9 @@ class ExperimentCollector(Collector):
         yield from families
 
     def _families(self) -> list[Metric]:
+        open_incidents = GaugeMetricFamily(
+            "inrush_open_incidents", "Incidents not yet resolved (open or acknowledged)",
+            labels=["experiment"])
         open_alerts = GaugeMetricFamily(
             "inrush_open_alerts", "Alerts not yet resolved (open or acknowledged)",
             labels=["experiment"])
@@ -143,6 +148,9 @@ class ExperimentCollector(Collector):
             counts = dict(session.execute(
                 select(Alert.experiment_id, func.count()).where(Alert.status.in_(UNRESOLVED))
                 .group_by(Alert.experiment_id)).all())
+            incidents = dict(session.execute(
+                select(Incident.experiment_id, func.count())
+                .where(Incident.status.in_(UNRESOLVED)).group_by(Incident.experiment_id)).all())
             latest = (select(DiagnosisSnapshot.experiment_id,
                              func.max(DiagnosisSnapshot.version).label("version"))
                       .group_by(DiagnosisSnapshot.experiment_id).subquery())
@@ -151,6 +159,7 @@ class ExperimentCollector(Collector):
                 .join(latest, (DiagnosisSnapshot.experiment_id == latest.c.experiment_id)
                       & (DiagnosisSnapshot.version == latest.c.version))).all())
         for experiment_id in ids:
+            open_incidents.add_metric([experiment_id], incidents.get(experiment_id, 0))
             open_alerts.add_metric([experiment_id], counts.get(experiment_id, 0))
             document = documents.get(experiment_id)
             if not document:
@@ -163,7 +172,7 @@ class ExperimentCollector(Collector):
             if document.get("as_of"):
                 last_day.add_metric([experiment_id],
                                     _date_seconds(dt.date.fromisoformat(document["as_of"])))
-        return [open_alerts, p_value, flagged, last_day]
+        return [open_incidents, open_alerts, p_value, flagged, last_day]
 
 
 class _Exposition:

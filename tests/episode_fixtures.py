@@ -1,10 +1,8 @@
-"""Episodes and diagnoses with episodes, for the service's incident tests.
+"""Hand-made episodes and a stand-in diagnosis, for the service's incident tests.
 
 The incident rules under test are the service's own bookkeeping (matching by day overlap,
-lifecycle, notifications), so most tests feed hand-made episodes through :class:`StandIn`.
-:func:`with_episodes` gives a real diagnosis episodes where the detectors do not yet group
-findings into them: the alert-level flagged days on consecutive dates form one inflow episode
-with the findings behind it as evidence. A diagnosis that has ``episodes`` passes unchanged.
+lifecycle, notifications), so those tests feed hand-made episodes through :class:`StandIn`;
+the end-to-end tests use the detectors' own episodes.
 """
 
 from __future__ import annotations
@@ -76,66 +74,3 @@ class StandIn:
     def to_dict(self) -> dict[str, Any]:
         return {"experiment": "route-cards", "as_of": self.as_of.isoformat(),
                 "status": self.status, "incidents": [e.to_dict() for e in self.episodes]}
-
-
-class WithEpisodes:
-    """A real diagnosis with episodes grouped from its alert-level flagged days."""
-
-    def __init__(self, diagnosis: Any) -> None:
-        self._diagnosis = diagnosis
-        self.episodes = _group(diagnosis)
-
-    def __getattr__(self, name: str) -> Any:
-        return getattr(self._diagnosis, name)
-
-    def findings(self) -> tuple[Any, ...]:
-        seen: dict[tuple[str, str], Any] = {}
-        for item in self.episodes:
-            for evidence in item.evidence:
-                seen.setdefault((evidence.kind, evidence.key), evidence)
-        return tuple(seen.values())
-
-    def to_dict(self) -> dict[str, Any]:
-        return {**self._diagnosis.to_dict(), "incidents": [e.to_dict() for e in self.episodes]}
-
-
-def with_episodes(diagnosis: Any) -> Any:
-    if getattr(diagnosis, "episodes", None) is not None:
-        return diagnosis
-    return WithEpisodes(diagnosis)
-
-
-def _group(diagnosis: Any) -> tuple[Episode, ...]:
-    days = [d for d in diagnosis.flagged_days if d.severity == "alert"]
-    runs: list[list[Any]] = []
-    for flagged in days:
-        if runs and (flagged.date - runs[-1][-1].date).days <= 2:
-            runs[-1].append(flagged)
-        else:
-            runs.append([flagged])
-    findings = {(f.kind, f.key): f for f in diagnosis.findings()}
-    episodes = []
-    for run in runs:
-        arm = run[0].inflow_arm
-        daily = tuple(EpisodeDay(d.date, float(d.excess[arm])) for d in run)
-        by_source: dict[str, float] = {}
-        for flagged in run:
-            for share in flagged.sources:
-                by_source[share.source] = by_source.get(share.source, 0.0) + share.excess
-        total = sum(u for u in by_source.values() if u > 0) or 1.0
-        evidence = [findings[("skewed_day", d.date.isoformat())] for d in run]
-        evidence += [f for (kind, key), f in findings.items()
-                     if kind == "skewed_source" and by_source.get(key, 0.0) > 0]
-        evidence += [f for (kind, _), f in findings.items() if kind == "srm"]
-        units = sum(d.units for d in daily)
-        episodes.append(Episode(
-            shape=INFLOW, arm=arm, start=run[0].date, end=run[-1].date, units=units,
-            daily=daily, cells=(),
-            sources=tuple(SourceContribution(s, u / total, u) for s, u in by_source.items()),
-            campaigns=tuple(sorted({c for d in run for c in d.campaigns})),
-            severity="alert", material=True, p_value=min(d.p_value for d in run),
-            detected_by=("scan",), summary=f"{arm} got {units:+.0f} units over plan",
-            units_meaning="units over plan", advice=tuple(diagnosis.advice),
-            evidence=tuple(Evidence(f.kind, f.key, f.severity, f.title, f.detail)
-                           for f in evidence)))
-    return tuple(episodes)

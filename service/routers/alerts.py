@@ -29,7 +29,9 @@ from .common import MAX_BIGINT, base_url
 
 router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
 
-KINDS = ("srm", "skewed_day", "skewed_source", "share_changepoint", "engagement_changepoint")
+# The kinds of findings the detectors make, then those of findings stored by earlier versions.
+KINDS = ("srm", "skewed_window", "skewed_source", "share_change",
+         "skewed_day", "share_changepoint", "engagement_changepoint")
 
 
 @router.get("", response_model=AlertPage, responses=problem_responses(401, 403, 422))

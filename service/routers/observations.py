@@ -32,6 +32,7 @@ from ..schemas.common import problem_responses
 from ..schemas.observations import (
     AlertCounts,
     DiagnosisRef,
+    IncidentCounts,
     ObservationBatch,
     ObservationList,
     WriteResult,
@@ -67,7 +68,7 @@ async def put_observations(experiment_id: str, request: Request,
 
     Every row is validated first; if any is invalid the answer lists each problem with its
     row and field and nothing is written. Otherwise all rows are stored in one transaction,
-    the experiment is re-diagnosed on all its stored rows and alerts are updated.
+    the experiment is re-diagnosed on all its stored rows and incidents are updated.
     """
     kind = media_type(request.headers.get("content-type"))
     if kind not in (JSON_MEDIA_TYPE, CSV_MEDIA_TYPE) and not kind.endswith("+json"):
@@ -114,7 +115,10 @@ def _write(request: Request, session: Session, experiment_id: str, body: bytes,
             version=snapshot.version,
             url=experiment_url(request, experiment_id, "/diagnosis")),
         alerts=AlertCounts(opened=len(refresh.alerts.opened),
-                           resolved=len(refresh.alerts.resolved)))
+                           resolved=len(refresh.alerts.resolved)),
+        incidents=IncidentCounts(opened=len(refresh.incidents.opened),
+                                 updated=len(refresh.incidents.updated),
+                                 resolved=len(refresh.incidents.resolved)))
     return JSONResponse(result.model_dump(mode="json"))
 
 

@@ -23,8 +23,9 @@ class AlertEventOut(BaseModel):
 class AlertOut(BaseModel):
     id: int
     experiment: str
-    kind: str = Field(description="srm | skewed_day | skewed_source | share_changepoint | "
-                                  "engagement_changepoint")
+    kind: str = Field(description="srm | skewed_window | skewed_source | share_change (and, "
+                                  "stored before incidents: skewed_day | share_changepoint | "
+                                  "engagement_changepoint)")
     key: str
     status: AlertStatus
     severity: str

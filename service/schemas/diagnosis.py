@@ -19,6 +19,12 @@ class DiagnosisDocument(BaseModel):
     flagged_days: list[dict[str, Any]]
     sources: list[dict[str, Any]]
     changepoints: dict[str, Any]
+    incidents: list[dict[str, Any]] = Field(
+        default_factory=list,
+        description="one per episode (shape, arm, start, end, units, daily, sources, campaigns, "
+                    "severity, material, impact, advice, evidence...), with the stored "
+                    "incident's id, experiment, status, opened_at, acknowledged_at, "
+                    "resolved_at, resolution and explained_by on the latest diagnosis")
     advice: list[str]
 
 

@@ -94,12 +94,19 @@ class AlertCounts(BaseModel):
     resolved: int
 
 
+class IncidentCounts(BaseModel):
+    opened: int = Field(description="incidents opened (new or reopened) by this write")
+    updated: int = Field(description="incidents whose days, arm, shape or severity changed")
+    resolved: int = Field(description="incidents the new data no longer supports")
+
+
 class WriteResult(BaseModel):
     written: int = Field(description="rows in the request, all stored")
     inserted: int
     updated: int = Field(description="rows that replaced a stored row with the same key")
     diagnosis: DiagnosisRef
-    alerts: AlertCounts
+    alerts: AlertCounts = Field(description="findings (the incidents' evidence)")
+    incidents: IncidentCounts
 
 
 _ROW_FIELDS = frozenset(ObservationIn.model_fields)

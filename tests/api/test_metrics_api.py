@@ -43,6 +43,10 @@ def test_gauges_match_the_diagnosis_and_alerts(client: Any, anonymous: Any) -> N
     found = families(response.text)
     assert gauge(found, "inrush_open_alerts", "route-cards") == len(alerts["items"]) - 1
     assert gauge(found, "inrush_open_alerts", "trail-badges") == 0
+    # The demo's campaign is one open incident.
+    assert gauge(found, "inrush_open_incidents", "route-cards") == len(
+        diagnosis["incidents"]) == 1
+    assert gauge(found, "inrush_open_incidents", "trail-badges") == 0
     assert gauge(found, "inrush_srm_p_value", "route-cards") == pytest.approx(
         diagnosis["srm"]["p_value"])
     assert gauge(found, "inrush_srm_p_value", "trail-badges") is None  # no data, no value

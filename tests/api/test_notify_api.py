@@ -13,20 +13,12 @@ from apihelpers import EXPERIMENT, assert_problem, corrected_demo_csv, demo_csv_
 from fastapi import FastAPI
 from notify_receiver import running_receiver
 
-from service import analysis
 from service.notify import signing
 from service.notify.settings import NotifySettings
 from service.notify.worker import NotifyWorker
-from tests.episode_fixtures import with_episodes
 
 SECRET = "whsec_bGFya3NwdXItdHJhaWxzLWtleQ=="
 
-
-@pytest.fixture(autouse=True)
-def episodes(monkeypatch: pytest.MonkeyPatch) -> None:
-    """Diagnoses with episodes (the demo's campaign days form one)."""
-    real = analysis.diagnose
-    monkeypatch.setattr(analysis, "diagnose", lambda *a, **k: with_episodes(real(*a, **k)))
 
 
 def deliver_all(app: FastAPI) -> int:

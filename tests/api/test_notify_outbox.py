@@ -14,7 +14,6 @@ import pytest
 from notify_receiver import running_receiver
 from sqlalchemy import func, select
 
-from service import analysis
 from service.analysis import refresh_diagnosis
 from service.db.incident_models import Incident, IncidentEvent
 from service.db.models import Experiment, Observation, utcnow
@@ -26,17 +25,10 @@ from service.notify import signing
 from service.notify.outbox import enqueue_for_changes
 from service.notify.settings import NotifySettings
 from service.notify.worker import LOST_LEASE, NotifyWorker
-from tests.episode_fixtures import with_episodes
 
 SECRET = "whsec_" + "bGFya3NwdXItdHJhaWxzLWtleQ=="
 FAST = (0.0, 0.01, 0.01)  # a short retry schedule so the tests do not wait hours
 
-
-@pytest.fixture(autouse=True)
-def episodes(monkeypatch: pytest.MonkeyPatch) -> None:
-    """Diagnoses with episodes (the demo's campaign days form one)."""
-    real = analysis.diagnose
-    monkeypatch.setattr(analysis, "diagnose", lambda *a, **k: with_episodes(real(*a, **k)))
 
 
 @pytest.fixture
@@ -122,7 +114,7 @@ def test_enqueue_shares_the_incident_transaction(database: Database,
                                                                      campaign)
     kinds = {e["kind"] for e in stored[0].payload["data"]["detail"]["evidence"]}
     # The demo's whole-period ratio stays above the alert level; the campaign days do not.
-    assert {"skewed_day", "skewed_source"} <= kinds
+    assert {"skewed_window", "skewed_source"} <= kinds
     assert stored[0].payload["data"]["links"]["status_page"] == (
         "https://inrush.larkspur.example/experiments/route-cards")
 

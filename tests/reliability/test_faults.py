@@ -15,13 +15,11 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import func, select
 
-from service import analysis
 from service.app import create_app
 from service.db.notify_models import DeliveryAttempt, Outbox
 from service.notify.settings import NotifySettings
 from service.notify.worker import NotifyWorker
 from service.settings import Settings
-from tests.episode_fixtures import with_episodes
 from tests.reliability.conftest import ADMIN_TOKEN
 from tests.reliability.support import (
     DEMO_CSV,
@@ -133,8 +131,6 @@ def test_webhook_receiver_outage_ends_with_every_notification_delivered(
     it recovers. Every notification arrives, and each alert's deliveries list the failed
     attempts and the final delivery."""
     monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1:*")
-    real = analysis.diagnose  # diagnoses with episodes: the demo's campaign days form one
-    monkeypatch.setattr(analysis, "diagnose", lambda *a, **k: with_episodes(real(*a, **k)))
     receiver = FaultyReceiver(mode={"down": "ok", "slow": "slow", "error": "error"}[fault],
                               delay=1.0)
     if fault != "down":

@@ -15,7 +15,6 @@ from service.http import json_safe
 from service.incidents import explanation
 from service.notify import payload as payloads
 from tests.demo_documents import demo_documents
-from tests.episode_fixtures import with_episodes
 
 EXPERIMENT = {"id": "route-cards", "title": "Route cards on the trail list"}
 CAMPAIGN_DATES = [(scenario.START + dt.timedelta(days=d)).isoformat()
@@ -26,8 +25,8 @@ CAMPAIGN_DATES = [(scenario.START + dt.timedelta(days=d)).isoformat()
 def demo_episode() -> dict[str, Any]:
     frame = pd.read_csv(scenario.CSV_PATH)
     table = ObservationTable.from_frame(frame, list(scenario.ARMS))
-    diagnosis = with_episodes(diagnose(table, AllocationSchedule.constant(list(scenario.ARMS)),
-                                       experiment=scenario.EXPERIMENT_ID))
+    diagnosis = diagnose(table, AllocationSchedule.constant(list(scenario.ARMS)),
+                         experiment=scenario.EXPERIMENT_ID)
     [episode] = diagnosis.episodes
     return json_safe(episode.to_dict())
 
