@@ -19,8 +19,9 @@ difference, weighted by the source's regular units over every day and arm. Score
 * ``naive``: the plain difference of arm means.
 
 The contaminated cells come from the simulation's truth (which days, sources and arm got how
-many extra units) and, separately, from the detector (the diagnosis's alert-level flagged days
-and their per-source excess, read by :func:`detectors.contamination.cells_from_document`).
+many extra units) and, separately, from the detector (the diagnosis document's incidents,
+with each incident's impact measured by ``incident_impact``, read by
+:func:`detectors.contamination.cells_from_document`).
 Coverage carries a Wilson 95% interval. ``python -m benchmarks.honest_effect [--reps N]``
 rewrites its own section of RESULTS.md and its entry in results.json.
 
@@ -46,6 +47,7 @@ from detectors.contamination import (
     DEFAULT_MATERIALITY,
     ContaminatedCell,
     cells_from_document,
+    impact_function,
     incident_impact,
 )
 from detectors.errors import InputError
@@ -114,7 +116,7 @@ def one_rep(task: tuple[str, int]) -> dict[str, Any]:
         out["previous_default"] = {"covers": False, "error": str(error)[:120]}
     impact = incident_impact(sim.table, sim.schedule, METRIC, truth_cells(sim))
     out["impact_in_se"] = impact.in_se
-    document = diagnose(sim.table, sim.schedule).to_dict()
+    document = diagnose(sim.table, sim.schedule, impact=impact_function).to_dict()
     for source, cells in (("truth", truth_cells(sim)), ("detector", cells_from_document(document))):
         try:
             honest = honest_effect(sim.table, METRIC, cells, sim.schedule)
@@ -271,8 +273,8 @@ def write(summary: dict[str, Any]) -> None:
                      f"| {placement} | {_cell(row['truth.honest'])} | "
                      f"{_cell(row['truth.bounds'])} | {_cell(row['previous_default'])} | "
                      f"{_cell(row['naive'])} | - |")
-    lines += ["", "Contaminated cells from the detector (alert-level flagged days of the "
-              "diagnosis and their per-source excess):", "",
+    lines += ["", "Contaminated cells from the detector (the diagnosis document's incidents, "
+              "their (day, source) cells):", "",
               "| placement | honest (default) | bounds | bounds width / SE |", "|---|---|---|---|"]
     for placement, row in summary["placements"].items():
         width = row["detector.bounds"]["median_width_over_se"]
