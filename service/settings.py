@@ -41,6 +41,14 @@ class Settings(BaseSettings):
         4, ge=0, description="extra connections a worker process may open under load "
                              "(background work; closed again when returned)")
 
+    catch_up_seconds: float = Field(
+        60.0, ge=0, description="how often stale diagnoses (rows committed by a process that "
+                                "stopped before diagnosing them) are caught up; 0: at startup "
+                                "only")
+    table_cache_mb: int = Field(
+        512, ge=0, description="memory per worker process for observation tables kept between "
+                               "requests (0 disables the cache)")
+
     def base_url(self, fallback: str) -> str:
         """The public base URL without a trailing slash (``fallback`` when unset)."""
         return (self.public_url or fallback).rstrip("/")

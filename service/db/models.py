@@ -85,6 +85,9 @@ class Experiment(Base):
     webhook_secret: Mapped[str | None] = mapped_column(String(256), default=None)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    # Bumped by every committed write that changes what the diagnosis reads (rows, allocation,
+    # campaigns): a diagnosis computed outside the write lock is stored only if it is current.
+    data_version: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
 
 
 class Observation(Base):
@@ -120,6 +123,8 @@ class DiagnosisSnapshot(Base):
     series: Mapped[dict[str, Any] | None] = mapped_column(PortableJSON)
     etag: Mapped[str] = mapped_column(String(64))
     series_etag: Mapped[str] = mapped_column(String(64))
+    # The experiment's data_version the snapshot was computed from (None before it existed).
+    data_version: Mapped[int | None] = mapped_column(Integer, default=None)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
 
 

@@ -13,7 +13,7 @@ from starlette.concurrency import run_in_threadpool
 from detectors.errors import InputError
 
 from ..alerting import CORRECTED_DATA, LATER_DATA
-from ..analysis import NO_DATA, refresh_diagnosis, stored_rows
+from ..analysis import NO_DATA, record_upload, refresh_diagnosis, stored_rows
 from ..auth import require_read, require_write
 from ..csvio import write_observations_csv
 from ..db.models import Observation, utcnow
@@ -96,11 +96,13 @@ def _write(request: Request, session: Session, experiment_id: str, body: bytes,
     except InputError as error:
         return input_error_response(request, error, csv_lines=is_csv)
 
+    # One short write transaction stores the rows; the diagnosis runs after it, outside the
+    # lock (service.analysis.refresh_diagnosis), and the answer reports the stored result.
     experiment = lock_experiment(session, experiment_id)
     staged = upsert_rows(session, experiment, rows)
-    refresh = refresh_diagnosis(session, experiment, staged=staged,
+    record_upload(session, experiment, staged)
+    refresh = refresh_diagnosis(session, experiment_id,
                                 cause=CORRECTED_DATA if staged.updated else LATER_DATA)
-    session.commit()
     snapshot = refresh.snapshot
     result = WriteResult(
         written=len(rows), inserted=staged.inserted, updated=staged.updated,
