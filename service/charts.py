@@ -19,6 +19,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import matplotlib
+import numpy as np
 
 matplotlib.use("Agg")
 
@@ -192,8 +193,14 @@ def share_chart(series: Mapping[str, Any]) -> str:
         return _to_svg(figure, title)
 
 
+ENTRANTS_SOURCES = 5  # drawn one by one; the rest is one line, so wide experiments stay legible
+
+
 def entrants_chart(series: Mapping[str, Any]) -> str:
-    """Units entered per day through each source, one panel per arm (shared scale)."""
+    """Units entered per day through each source, one panel per arm (shared scale).
+
+    The ``ENTRANTS_SOURCES`` largest sources are drawn one by one and all others summed as
+    one line, so the chart's size does not grow with the number of sources."""
     title = "Entrants per source and arm"
     arms = list(series.get("arms", []))
     sources = list(series.get("sources", []))
@@ -201,16 +208,17 @@ def entrants_chart(series: Mapping[str, Any]) -> str:
     if not arms or not sources or not days:
         return _empty(title, "No entrants yet.")
     dates = _dates(series.get("dates") or [d["date"] for d in days])
+    lines = _largest_sources(sources, arms)
     with _LOCK, rc_context(_RC):
         figure = Figure(figsize=(7.5, 2.2 + 1.7 * len(arms)))
         axes = figure.subplots(len(arms), 1, sharex=True, sharey=True, squeeze=False)[:, 0]
         for ax, arm in zip(axes, arms, strict=True):
             _mark_flagged(ax, days)
-            for j, source in enumerate(sources):
+            for j, (label, entered) in enumerate(lines):
                 look = style(j)
-                ax.plot(dates, source["entered"][arm], color=look.color,
+                ax.plot(dates, entered[arm], color=look.color,
                         linestyle=look.linestyle, marker=look.marker, markersize=3.5,
-                        linewidth=1.4, label=source["source"])
+                        linewidth=1.4, label=label)
             ax.text(0.005, 0.97, f"arm {arm}", transform=ax.transAxes, ha="left", va="top",
                     fontsize=9.5, fontweight="bold",
                     bbox={"facecolor": PAPER, "edgecolor": SLATE, "boxstyle": "round,pad=0.3"})
@@ -218,9 +226,23 @@ def entrants_chart(series: Mapping[str, Any]) -> str:
         axes[0].set_title(title)
         axes[-1].set_xlabel("Day of entry")
         _date_axis(axes[-1])
-        axes[-1].legend(ncol=min(4, len(sources)), loc="upper center",
+        axes[-1].legend(ncol=min(4, len(lines)), loc="upper center",
                         bbox_to_anchor=(0.5, -0.35), title="entry source")
         return _to_svg(figure, title)
+
+
+def _largest_sources(sources: Sequence[Mapping[str, Any]], arms: Sequence[str]
+                     ) -> list[tuple[str, dict[str, Any]]]:
+    """``(label, {arm: daily counts})`` of the largest sources, then the others summed."""
+    totals = [sum(sum(source["entered"][arm]) for arm in arms) for source in sources]
+    order = sorted(range(len(sources)), key=lambda i: -totals[i])
+    if len(sources) <= ENTRANTS_SOURCES + 1:
+        return [(str(sources[i]["source"]), sources[i]["entered"]) for i in sorted(order)]
+    shown = order[:ENTRANTS_SOURCES]
+    rest = order[ENTRANTS_SOURCES:]
+    others = {arm: np.sum([sources[i]["entered"][arm] for i in rest], axis=0) for arm in arms}
+    return [*((str(sources[i]["source"]), sources[i]["entered"]) for i in shown),
+            (f"{len(rest)} other sources", others)]
 
 
 def engagement_chart(series: Mapping[str, Any], metric: str) -> str:

@@ -16,10 +16,10 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from detectors import InputError, reweight
+from detectors import InputError, ObservationTable, reweight
 from detectors.errors import UndefinedEstimateError
 
-from ..analysis import latest_snapshot, latest_summaries, load_table
+from ..analysis import latest_snapshot, latest_summaries, load_table, schedule_for
 from ..campaigns import campaign_document, stored_campaigns
 from ..db.models import Alert, Experiment
 from ..db.session import get_session
@@ -29,7 +29,7 @@ from ..routers.common import base_url
 from ..routers.reweight import flagged_dates
 from ..settings import Settings
 from ..tokens import Principal, Scope, authenticate
-from ..traffic import sensitivity_document, stored_arm_traffic, thresholds_of
+from ..traffic import ArmTraffic, sensitivity_document, thresholds_of
 from .render import (
     render_experiment_page,
     render_index_page,
@@ -138,8 +138,10 @@ def experiment_page(experiment_id: str, request: Request,
                                                  Alert.status.in_(UNRESOLVED))
                              .order_by(Alert.id.desc()))
     alert_rows = [alert_out(request, a).model_dump(mode="json") for a in alerts]
-    effect, problem = _effect(session, experiment, document, series)
-    traffic = stored_arm_traffic(session, experiment)
+    table = load_table(session, experiment)  # cached per data version: read once per page
+    effect, problem = _effect(table, document, series)
+    traffic = (ArmTraffic.from_table(table, schedule_for(experiment))
+               if table is not None else None)
     campaigns = [campaign_document(row, experiment, traffic)
                  for row in stored_campaigns(session, experiment_id)]
     alpha, max_window = thresholds_of(document)
@@ -160,14 +162,13 @@ def experiment_page(experiment_id: str, request: Request,
     return HTMLResponse(html, headers=PAGE_HEADERS)
 
 
-def _effect(session: Session, experiment: Experiment, document: dict[str, Any] | None,
+def _effect(table: ObservationTable | None, document: dict[str, Any] | None,
             series: dict[str, Any] | None) -> tuple[dict[str, Any] | None, str | None]:
     """The effect on the first metric, re-weighted by source x flagged window to the
     reference arm's mix; or why there is none."""
     metrics = list((series or {}).get("metrics", []))
     if document is None or not metrics:
         return None, "No metric has been uploaded, so there is no effect to estimate."
-    table = load_table(session, experiment)
     if table is None:
         return None, "No observations are stored."
     flagged: list[dt.date] = flagged_dates(document)
