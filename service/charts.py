@@ -89,6 +89,14 @@ def style(index: int) -> Style:
     return STYLES[index % len(STYLES)]
 
 
+MARKERS_PER_LINE = 40  # beyond this a long series is all markers, and its SVG all paths
+
+
+def _every(points: int) -> int:
+    """Mark every n-th point so that a line carries at most ``MARKERS_PER_LINE`` markers."""
+    return max(1, -(-points // MARKERS_PER_LINE))
+
+
 def _dates(labels: Sequence[str]) -> list[dt.date]:
     return [dt.date.fromisoformat(d) for d in labels]
 
@@ -185,7 +193,8 @@ def share_chart(series: Mapping[str, Any]) -> str:
             observed = [_nan(d["arms"][arm]["observed_share"]) for d in days]
             planned = [d["arms"][arm]["expected_share"] for d in days]
             ax.plot(dates, observed, color=look.color, linestyle=look.linestyle,
-                    marker=look.marker, markersize=4, linewidth=1.6, label=f"{arm}: observed")
+                    marker=look.marker, markevery=_every(len(dates)), markersize=4,
+                    linewidth=1.6, label=f"{arm}: observed")
             ax.step(dates, planned, where="mid", color=look.color, linestyle=(0, (2, 2)),
                     linewidth=1.0, alpha=0.8, label=f"{arm}: planned")
         ax.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
@@ -217,7 +226,8 @@ def entrants_chart(series: Mapping[str, Any]) -> str:
             for j, (label, entered) in enumerate(lines):
                 look = style(j)
                 ax.plot(dates, entered[arm], color=look.color,
-                        linestyle=look.linestyle, marker=look.marker, markersize=3.5,
+                        linestyle=look.linestyle, marker=look.marker,
+                        markevery=_every(len(dates)), markersize=3.5,
                         linewidth=1.4, label=label)
             ax.text(0.005, 0.97, f"arm {arm}", transform=ax.transAxes, ha="left", va="top",
                     fontsize=9.5, fontweight="bold",
@@ -260,7 +270,8 @@ def engagement_chart(series: Mapping[str, Any], metric: str) -> str:
             look = style(i)
             values = [_nan(d["arms"][arm]["engagement"].get(metric)) for d in days]
             ax.plot(dates, values, color=look.color, linestyle=look.linestyle,
-                    marker=look.marker, markersize=4, linewidth=1.6, label=arm)
+                    marker=look.marker, markevery=_every(len(dates)), markersize=4,
+                    linewidth=1.6, label=arm)
         _finish_daily(ax, title, f"Mean {metric} per entrant", handles, ncol=4)
         return _to_svg(figure, title)
 

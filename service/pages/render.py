@@ -6,7 +6,9 @@ Nothing here touches the database, so every page can be rendered and checked in 
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Mapping, Sequence
+import threading
+from collections import OrderedDict
+from collections.abc import Callable, Mapping, Sequence
 from functools import cache
 from typing import Any
 
@@ -14,6 +16,7 @@ from jinja2 import Environment, PackageLoader, select_autoescape
 from markupsafe import Markup
 
 from .. import charts
+from ..http import entity_tag
 
 STATUS_LABELS = {
     "healthy": ("Healthy", "The arm counts follow the allocation."),
@@ -102,14 +105,16 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
                            diagnosis_version: int | None = None,
                            links: Mapping[str, str] | None = None,
                            campaigns: Sequence[Mapping[str, Any]] = (),
-                           sensitivity: Mapping[str, Any] | None = None) -> str:
+                           sensitivity: Mapping[str, Any] | None = None,
+                           series_tag: str | None = None) -> str:
     """The status page of one experiment.
 
     ``experiment``: ``id, title, arms, start_date``; ``diagnosis`` and ``series``: the API's
     documents (``None`` before any unit); ``alerts``: unresolved alerts as the API lists them;
     ``reweight``: a reweight answer for the first metric, or ``reweight_problem`` saying why
     there is none; ``campaigns``: registered campaigns with their checks and ``sensitivity``
-    the sensitivity answer, as the API gives them.
+    the sensitivity answer, as the API gives them; ``series_tag``: the stored entity tag of
+    ``series`` (computed when absent), under which its charts are kept between requests.
     """
     status = diagnosis.get("status") if diagnosis else "no_data"
     metrics = list((series or {}).get("metrics", []))
@@ -117,12 +122,16 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
     # The SVG text comes from matplotlib, which escapes the labels it writes.
     chart_svgs: dict[str, Markup] = {}
     if series:
-        chart_svgs["share"] = Markup(charts.share_chart(series))
-        chart_svgs["entrants"] = Markup(charts.entrants_chart(series))
+        tag = series_tag or entity_tag(dict(series))
+        chart_svgs["share"] = Markup(_drawn(("share", tag), charts.share_chart, series))
+        chart_svgs["entrants"] = Markup(_drawn(("entrants", tag), charts.entrants_chart,
+                                               series))
         if metric:
-            chart_svgs["engagement"] = Markup(charts.engagement_chart(series, metric))
+            chart_svgs["engagement"] = Markup(_drawn(
+                ("engagement", tag, metric), charts.engagement_chart, series, metric))
     if reweight and reweight.get("comparisons"):
-        chart_svgs["effect"] = Markup(charts.effect_chart(reweight))
+        chart_svgs["effect"] = Markup(_drawn(("effect", entity_tag(dict(reweight))),
+                                             charts.effect_chart, reweight))
     caveats = list(reweight.get("caveats", [])) if reweight else []
     if reweight and not any("different question" in c for c in caveats):
         caveats.append(REWEIGHT_CAVEAT)
@@ -133,6 +142,28 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
         sources=source_totals(series) if series else [],
         arms=list(experiment.get("arms", [])), version=diagnosis_version,
         links=dict(links or {}), campaigns=list(campaigns), sensitivity=sensitivity)
+
+
+CHARTS_KEPT = 64
+_drawn_charts: OrderedDict[tuple[str, ...], str] = OrderedDict()
+_drawn_lock = threading.Lock()
+
+
+def _drawn(key: tuple[str, ...], draw: Callable[..., str], *args: Any) -> str:
+    """A chart drawn once per document: re-reading a page draws nothing (a chart of a year
+    of days costs far more than the rest of the page). The most recent ``CHARTS_KEPT``
+    charts are kept."""
+    with _drawn_lock:
+        svg = _drawn_charts.get(key)
+        if svg is not None:
+            _drawn_charts.move_to_end(key)
+            return svg
+    svg = draw(*args)
+    with _drawn_lock:
+        _drawn_charts[key] = svg
+        while len(_drawn_charts) > CHARTS_KEPT:
+            _drawn_charts.popitem(last=False)
+    return svg
 
 
 def render_index_page(experiments: Sequence[Mapping[str, Any]]) -> str:

@@ -158,7 +158,8 @@ def experiment_page(experiment_id: str, request: Request,
                     "start_date": experiment.start_date.isoformat()},
         diagnosis=document, series=series, alerts=alert_rows, reweight=effect,
         reweight_problem=problem, diagnosis_version=snapshot.version if snapshot else None,
-        links=links, campaigns=campaigns, sensitivity=sensitivity)
+        links=links, campaigns=campaigns, sensitivity=sensitivity,
+        series_tag=snapshot.series_etag if snapshot else None)
     return HTMLResponse(html, headers=PAGE_HEADERS)
 
 
