@@ -80,3 +80,26 @@ def test_an_empty_experiment_streams_an_empty_export(client: Any,
     assert client.get(URL).json() == {"rows": [], "next": None}
     assert client.get(URL, headers={"Accept": "text/csv"}).text == \
         "date,arm,source,entered\n"
+
+
+def test_series_between_two_dates_cuts_every_daily_list_alike(
+        client: Any, experiment: dict[str, Any]) -> None:
+    upload_csv(client, demo_csv_text())
+    whole = client.get("/v1/experiments/route-cards/series").json()
+    response = client.get("/v1/experiments/route-cards/series?from=2026-10-28&to=2026-10-30")
+    assert response.status_code == 200
+    part = response.json()
+    start = whole["dates"].index("2026-10-28")
+    assert part["dates"] == ["2026-10-28", "2026-10-29", "2026-10-30"]
+    assert [d["date"] for d in part["days"]] == part["dates"]
+    assert part["days"] == whole["days"][start:start + 3]
+    for cut, full in zip(part["sources"], whole["sources"], strict=True):
+        assert cut["source"] == full["source"]
+        assert cut["entered"] == {arm: counts[start:start + 3]
+                                  for arm, counts in full["entered"].items()}
+    # Each range has its own tag, and revalidates against it.
+    tag = response.headers["etag"]
+    assert tag != client.get("/v1/experiments/route-cards/series").headers["etag"]
+    again = client.get("/v1/experiments/route-cards/series?from=2026-10-28&to=2026-10-30",
+                       headers={"If-None-Match": tag})
+    assert again.status_code == 304
