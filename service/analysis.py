@@ -1,6 +1,6 @@
 """From stored rows to a stored diagnosis: load the table, run the detectors, keep a snapshot,
-derive alerts. :func:`refresh_diagnosis` manages its own transactions (the detectors run with
-none open); every other function runs inside the caller's transaction."""
+derive alerts. :func:`rediagnose` manages its own transactions (the detectors run with none
+open); every other function runs inside the caller's transaction."""
 
 from __future__ import annotations
 
@@ -23,7 +23,7 @@ from detectors import (
 
 from .alerting import CORRECTED_DATA, AlertChanges, sync_alerts
 from .campaigns import known_campaigns
-from .db.locks import lock_experiment_for_write
+from .db.locks import hold_experiment_lock, lock_experiment_for_write
 from .db.models import DiagnosisSnapshot, Experiment, Observation, utcnow
 from .db.observation_store import StagedUpload, read_observations
 from .http import entity_tag, json_safe
@@ -163,15 +163,14 @@ class _Computed:
     series: dict[str, Any] | None
 
 
-def refresh_diagnosis(session: Session, experiment_id: str, *,
-                      config: DiagnosisConfig | None = None,
-                      now: dt.datetime | None = None, cause: str = CORRECTED_DATA) -> Refresh:
+def rediagnose(session: Session, experiment_id: str, *, config: DiagnosisConfig | None = None,
+               now: dt.datetime | None = None, cause: str = CORRECTED_DATA) -> Refresh:
     """Diagnose the experiment's current data and store the result: a new snapshot if it
     differs from the latest one, and the alert changes with their notifications
     (``cause``: what changed, for resolution reasons). Returns what was stored.
 
     Call it after the change was committed with :func:`bump_data_version` (any transaction
-    the session has open is ended). The diagnosis is computed outside any write lock, so
+    the session has open is committed first). The diagnosis is computed outside any write lock, so
     uploads to other experiments never wait for it:
 
     1. a read transaction takes the experiment's ``data_version`` and then its rows (from the
@@ -183,38 +182,60 @@ def refresh_diagnosis(session: Session, experiment_id: str, *,
        steps 1-3 run again on the newer data (which includes this caller's change).
 
     After ``REFRESH_ATTEMPTS - 1`` lost races (a stream of writes to this one experiment),
-    the last attempt computes while holding the lock, which guarantees progress.
+    the last attempt computes while holding the lock (:func:`refresh_diagnosis`), which
+    guarantees progress.
     """
-    for attempt in range(REFRESH_ATTEMPTS):
-        under_lock = attempt == REFRESH_ATTEMPTS - 1
-        if under_lock:
-            experiment = lock_experiment_for_write(session, experiment_id)
-        else:
-            if session.in_transaction():
-                session.commit()
-            experiment = session.scalar(select(Experiment).where(Experiment.id == experiment_id)
-                                        .execution_options(populate_existing=True))
+    for _ in range(REFRESH_ATTEMPTS - 1):
+        if session.in_transaction():
+            session.commit()
+        experiment = session.scalar(select(Experiment).where(Experiment.id == experiment_id)
+                                    .execution_options(populate_existing=True))
         if experiment is None:
             raise LookupError(f"experiment {experiment_id!r} does not exist")
         version = experiment.data_version
         rows = current_rows(session, experiment)
         campaigns = known_campaigns(session, experiment_id)
         schedule = schedule_for(experiment)
-        if not under_lock:
-            session.commit()  # nothing is held while the detectors run
+        session.commit()  # nothing is held while the detectors run
         computed = _compute(rows.table, schedule, campaigns, experiment_id, config)
-        if not under_lock:
-            experiment = lock_experiment_for_write(session, experiment_id)
-            if experiment is None:
-                raise LookupError(f"experiment {experiment_id!r} does not exist")
-            if experiment.data_version != version:
-                session.commit()  # superseded (nothing written): diagnose the newer data
-                continue
+        experiment = lock_experiment_for_write(session, experiment_id)
+        if experiment is None:
+            raise LookupError(f"experiment {experiment_id!r} does not exist")
+        if experiment.data_version != version:
+            session.commit()  # superseded (nothing written): diagnose the newer data
+            continue
         refresh = _store(session, experiment, version, computed, now=now or utcnow(),
                          cause=cause)
         session.commit()
         return refresh
-    raise AssertionError("the last attempt holds the lock and always stores")
+    experiment = lock_experiment_for_write(session, experiment_id)
+    if experiment is None:
+        raise LookupError(f"experiment {experiment_id!r} does not exist")
+    refresh = refresh_diagnosis(session, experiment, config=config, now=now, cause=cause)
+    session.commit()
+    return refresh
+
+
+def refresh_diagnosis(session: Session, experiment: Experiment, *,
+                      config: DiagnosisConfig | None = None,
+                      now: dt.datetime | None = None, cause: str = CORRECTED_DATA,
+                      staged: StagedUpload | None = None) -> Refresh:
+    """Diagnose every row the transaction sees and store the result in it (the caller
+    commits): a new snapshot if it differs from the latest one, and the alert changes.
+    Takes the experiment's write lock unless the transaction holds it already
+    (:mod:`service.db.locks`), and holds it while the detectors run: :func:`rediagnose` is
+    what requests use. The rows are read from the database (uncommitted changes of this
+    transaction included), not from the table cache. ``staged``: an upload this transaction
+    just made (its rows are taken from memory instead of being read back)."""
+    hold_experiment_lock(session, experiment.id)
+    rows = read_observations(session, experiment.id, staged)
+    table = (ObservationTable.from_cells(experiment.arms, rows.dates, rows.arms, rows.sources,
+                                         rows.entered, rows.metrics,
+                                         start=experiment.start_date) if len(rows) else None)
+    computed = _compute(table, schedule_for(experiment), known_campaigns(session, experiment.id),
+                        experiment.id, config)
+    return _store(session, experiment, experiment.data_version, computed,
+                  now=now or utcnow(), cause=cause)
 
 
 def _compute(table: ObservationTable | None, schedule: AllocationSchedule,
@@ -276,5 +297,5 @@ def stale_experiments(session: Session) -> list[str]:
 
 __all__ = ["NO_DATA", "InputError", "Refresh", "SnapshotSummary", "bump_data_version",
            "current_rows", "latest_snapshot", "latest_summaries", "load_table",
-           "record_upload", "refresh_diagnosis", "schedule_for", "snapshot_version",
+           "record_upload", "rediagnose", "refresh_diagnosis", "schedule_for", "snapshot_version",
            "stale_experiments", "stored_rows"]

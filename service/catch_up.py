@@ -1,7 +1,7 @@
 """Diagnoses owed after a stop: a background thread that re-diagnoses stale experiments.
 
 An upload commits its rows (and bumps the experiment's ``data_version``) before its diagnosis
-is computed and stored (:func:`service.analysis.refresh_diagnosis`). A process that stops in
+is computed and stored (:func:`service.analysis.rediagnose`). A process that stops in
 between leaves the rows stored and the latest diagnosis older than them; nothing is lost, but
 the diagnosis and its alerts are owed. This thread finds such experiments
 (:func:`service.analysis.stale_experiments`) once at startup and then every
@@ -15,7 +15,7 @@ import logging
 import threading
 
 from .alerting import CORRECTED_DATA
-from .analysis import refresh_diagnosis, stale_experiments
+from .analysis import rediagnose, stale_experiments
 from .db.session import Database
 
 logger = logging.getLogger("inrush.catch_up")
@@ -28,7 +28,7 @@ def catch_up(database: Database) -> list[str]:
     for experiment_id in stale:
         try:
             with database.sessions() as session:
-                refresh_diagnosis(session, experiment_id, cause=CORRECTED_DATA)
+                rediagnose(session, experiment_id, cause=CORRECTED_DATA)
         except LookupError:
             continue  # deleted meanwhile
         except Exception:  # one experiment's failure must not stop the others

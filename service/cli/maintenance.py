@@ -124,8 +124,8 @@ def reanalyze(url: str, experiment_ids: Sequence[str], *, jobs: int = 1,
 
 def reanalyze_one(database: Database, experiment_id: str) -> Outcome:
     """Diagnose one experiment again (computed outside its write lock, stored under it, see
-    :func:`service.analysis.refresh_diagnosis`); failures become an outcome."""
-    from ..analysis import latest_snapshot, refresh_diagnosis
+    :func:`service.analysis.rediagnose`); failures become an outcome."""
+    from ..analysis import latest_snapshot, rediagnose
     from ..db.models import Experiment
 
     started = time.perf_counter()
@@ -136,7 +136,7 @@ def reanalyze_one(database: Database, experiment_id: str) -> Outcome:
                                error="the experiment does not exist (any more)")
             if latest_snapshot(session, experiment_id, documents=False) is None:
                 return Outcome(experiment_id, SKIPPED, time.perf_counter() - started)
-            refresh = refresh_diagnosis(session, experiment_id, cause=REANALYSIS)
+            refresh = rediagnose(session, experiment_id, cause=REANALYSIS)
             snapshot = refresh.snapshot
             return Outcome(experiment_id, NEW_VERSION if refresh.new_version else UNCHANGED,
                            time.perf_counter() - started, version=snapshot.version,

@@ -22,7 +22,7 @@ from ..analysis import (
     bump_data_version,
     latest_snapshot,
     latest_summaries,
-    refresh_diagnosis,
+    rediagnose,
 )
 from ..auth import require_read, require_write
 from ..db.models import Experiment, utcnow
@@ -153,7 +153,7 @@ def change_experiment(experiment_id: str, body: ExperimentPatch, request: Reques
         bump_data_version(session, experiment)
     session.commit()
     if diagnosed:
-        refresh = refresh_diagnosis(session, experiment_id, cause=NEW_ALLOCATION)
+        refresh = rediagnose(session, experiment_id, cause=NEW_ALLOCATION)
         opened, resolved = len(refresh.alerts.opened), len(refresh.alerts.resolved)
     out = experiment_out(request, session, experiment)
     return ExperimentPatchResult(**out.model_dump(), alerts_opened=opened,

@@ -18,7 +18,7 @@ from starlette.concurrency import run_in_threadpool
 from detectors.errors import InputError
 
 from ..alerting import CORRECTED_DATA, LATER_DATA
-from ..analysis import NO_DATA, record_upload, refresh_diagnosis
+from ..analysis import NO_DATA, record_upload, rediagnose
 from ..auth import require_read, require_write
 from ..csvio import observations_csv_header, observations_csv_lines, write_observations_csv
 from ..db.models import Observation, utcnow
@@ -103,11 +103,11 @@ def _write(request: Request, session: Session, experiment_id: str, body: bytes,
         return input_error_response(request, error, csv_lines=is_csv)
 
     # One short write transaction stores the rows; the diagnosis runs after it, outside the
-    # lock (service.analysis.refresh_diagnosis), and the answer reports the stored result.
+    # lock (service.analysis.rediagnose), and the answer reports the stored result.
     experiment = lock_experiment(session, experiment_id)
     staged = upsert_rows(session, experiment, rows)
     record_upload(session, experiment, staged)
-    refresh = refresh_diagnosis(session, experiment_id,
+    refresh = rediagnose(session, experiment_id,
                                 cause=CORRECTED_DATA if staged.updated else LATER_DATA)
     snapshot = refresh.snapshot
     result = WriteResult(

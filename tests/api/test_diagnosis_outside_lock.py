@@ -133,7 +133,7 @@ def test_a_diagnosis_owed_after_a_stop_is_caught_up_once(
         raise SystemError("the process stopped here")
 
     # The rows commit, then the process "stops" before the diagnosis is stored.
-    monkeypatch.setattr("service.routers.observations.refresh_diagnosis", stopped)
+    monkeypatch.setattr("service.routers.observations.rediagnose", stopped)
     assert _put(client, "route-cards", _half(demo_csv_text(), first=False)).status_code == 500
     monkeypatch.undo()
     assert len(client.get("/v1/experiments/route-cards/observations").json()["rows"]) == 224
