@@ -279,20 +279,22 @@ def _store(session: Session, experiment: Experiment, version: int, computed: _Co
     return Refresh(snapshot, diagnosis, changes, new_version)
 
 
-def stale_experiments(session: Session) -> list[str]:
-    """Experiments whose latest diagnosis predates their data: a process stopped between
-    committing a change and storing its diagnosis. :func:`refresh_diagnosis` catches up."""
+def stale_experiments(session: Session) -> dict[str, int]:
+    """Experiments whose latest diagnosis predates their data, with their ``data_version``: a
+    process stopped between committing a change and storing its diagnosis, or a request is
+    diagnosing it right now. :func:`rediagnose` catches up."""
     latest = (select(DiagnosisSnapshot.experiment_id,
                      func.max(DiagnosisSnapshot.data_version).label("version"))
               .group_by(DiagnosisSnapshot.experiment_id).subquery())
     has_rows = select(Observation.experiment_id).where(
         Observation.experiment_id == Experiment.id).exists()
-    query = (select(Experiment.id).outerjoin(latest, latest.c.experiment_id == Experiment.id)
+    query = (select(Experiment.id, Experiment.data_version)
+             .outerjoin(latest, latest.c.experiment_id == Experiment.id)
              .where(((latest.c.version.is_not(None))
                      & (Experiment.data_version > latest.c.version))
                     | (latest.c.experiment_id.is_(None) & has_rows))
              .order_by(Experiment.id))
-    return list(session.scalars(query))
+    return {str(ident): int(version) for ident, version in session.execute(query)}
 
 
 __all__ = ["NO_DATA", "InputError", "Refresh", "SnapshotSummary", "bump_data_version",

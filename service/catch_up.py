@@ -4,8 +4,10 @@ An upload commits its rows (and bumps the experiment's ``data_version``) before 
 is computed and stored (:func:`service.analysis.rediagnose`). A process that stops in
 between leaves the rows stored and the latest diagnosis older than them; nothing is lost, but
 the diagnosis and its alerts are owed. This thread finds such experiments
-(:func:`service.analysis.stale_experiments`) once at startup and then every
-``INRUSH_CATCH_UP_SECONDS``, and diagnoses them. Replicas may run it at once: the version check
+(:func:`service.analysis.stale_experiments`) at startup and then every
+``INRUSH_CATCH_UP_SECONDS`` (taking only those still stale at the version the pass before
+found: a newer change is likely being diagnosed by the request that made it), and diagnoses
+them. Replicas may run it at once: the version check
 under the experiment's lock stores each result once, so alerts still open and notify once.
 """
 
@@ -21,11 +23,17 @@ from .db.session import Database
 logger = logging.getLogger("inrush.catch_up")
 
 
-def catch_up(database: Database) -> list[str]:
-    """Diagnose every stale experiment once; returns their ids."""
+def catch_up(database: Database, *, seen: dict[str, int] | None = None) -> dict[str, int]:
+    """Diagnose the stale experiments; returns every stale one found, with its data version.
+
+    With ``seen`` (what the previous pass found) only those still stale at the same version
+    are diagnosed: one whose change is newer may be in the hands of the request that made
+    it, which diagnoses it within moments."""
     with database.sessions() as session:
         stale = stale_experiments(session)
-    for experiment_id in stale:
+    for experiment_id, version in stale.items():
+        if seen is not None and seen.get(experiment_id) != version:
+            continue
         try:
             with database.sessions() as session:
                 rediagnose(session, experiment_id, cause=CORRECTED_DATA)
@@ -37,7 +45,8 @@ def catch_up(database: Database) -> list[str]:
 
 
 class CatchUpThread:
-    """Runs :func:`catch_up` at start and then every ``interval`` seconds until stopped."""
+    """Runs :func:`catch_up` at start (every stale experiment) and then every ``interval``
+    seconds (those found stale at the same version by the pass before) until stopped."""
 
     def __init__(self, database: Database, interval: float) -> None:
         self.database = database
@@ -53,9 +62,10 @@ class CatchUpThread:
         self._thread.join(timeout)
 
     def _loop(self) -> None:
+        seen: dict[str, int] | None = None
         while not self._stop.is_set():
             try:
-                catch_up(self.database)
+                seen = catch_up(self.database, seen=seen)
             except Exception:  # a database hiccup must not end the thread
                 logger.exception("catching up stale diagnoses failed; retrying")
             if self.interval <= 0:
