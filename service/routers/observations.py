@@ -6,12 +6,13 @@ import base64
 import binascii
 import datetime as dt
 import json
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from typing import Annotated, Any
 
+import msgspec
 from fastapi import APIRouter, Depends, Header, Query, Request
 from fastapi.responses import JSONResponse, Response, StreamingResponse
-from sqlalchemy import Row, Select, select, tuple_
+from sqlalchemy import Row, Select, Text, cast, select, tuple_
 from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
@@ -200,30 +201,50 @@ def _rows_query(experiment_id: str, first: dt.date | None, last: dt.date | None,
 
 
 def _stored_parts(database: Database, query: Select[tuple[Any, ...]]
-                  ) -> Iterator[list[dict[str, object]]]:
+                  ) -> Iterator[Sequence[Row[tuple[Any, ...]]]]:
     """The rows a part at a time from one statement (a consistent view of the table; on
-    PostgreSQL a server-side cursor), in a session that lives as long as the stream."""
+    PostgreSQL a server-side cursor), in a session that lives as long as the stream. Each
+    row's ``metrics`` is its stored JSON text: the JSON export copies it as it is."""
+    raw = query.with_only_columns(
+        *query.selected_columns[:4], cast(Observation.metrics, Text).label("metrics"),
+        maintain_column_froms=True)
     with database.sessions() as session:
-        result = session.execute(query.execution_options(yield_per=EXPORT_PART_ROWS))
-        for part in result.partitions():
-            yield [_row(r) for r in part]
+        result = session.execute(raw.execution_options(yield_per=EXPORT_PART_ROWS))
+        yield from result.partitions()
 
 
 def _csv_parts(database: Database, query: Select[tuple[Any, ...]], names: list[str]
                ) -> Iterator[str]:
     yield observations_csv_header(names)
     for part in _stored_parts(database, query):
-        yield observations_csv_lines(part, names)
+        yield observations_csv_lines(
+            ({"date": r.date.isoformat(), "arm": r.arm, "source": r.source,
+              "entered": r.entered, "metrics": _METRICS.decode(r.metrics)} for r in part),
+            names)
+
+
+_METRICS = msgspec.json.Decoder(dict[str, dict[str, int | float]])
 
 
 def _json_parts(database: Database, query: Select[tuple[Any, ...]]) -> Iterator[bytes]:
-    """``{"rows": [...], "next": null}`` as the JSON answer of a page would encode it."""
+    """``{"rows": [...], "next": null}``, each row's stored metrics document copied as text;
+    names are encoded once each (a wide experiment repeats few arms and sources)."""
+    names: dict[str, str] = {}
+
+    def name(value: str) -> str:
+        text = names.get(value)
+        if text is None:
+            text = names[value] = json.dumps(value, ensure_ascii=False)
+        return text
+
     yield b'{"rows":['
-    separator = b""
+    separator = ""
     for part in _stored_parts(database, query):
-        text = json.dumps(part, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
-        yield separator + text[1:-1].encode()
-        separator = b","
+        text = ",".join(
+            f'{{"date":"{r.date.isoformat()}","arm":{name(r.arm)},"source":{name(r.source)},'
+            f'"entered":{r.entered},"metrics":{r.metrics}}}' for r in part)
+        yield (separator + text).encode()
+        separator = ","
     yield b'],"next":null}'
 
 
