@@ -16,6 +16,7 @@ from pydantic import BaseModel
 from starlette.concurrency import run_in_threadpool
 
 from .access_log import AccessLogMiddleware
+from .catch_up import CatchUpThread
 from .cors import add_cors
 from .db.session import Database
 from .http import BodyLimitMiddleware
@@ -44,6 +45,7 @@ from .routers import (
 )
 from .schemas.common import ProblemDetails
 from .settings import Settings
+from .table_cache import cache_for
 
 logger = logging.getLogger("inrush.service")
 
@@ -100,10 +102,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             await run_in_threadpool(database.migrate)
         # Webhook deliveries (INRUSH_NOTIFY_WORKER=0 leaves them to another process).
         worker = start_worker(database, notify_settings)
+        catching_up = CatchUpThread(database, settings.catch_up_seconds)
+        catching_up.start()
         _freeze_startup_objects()
         try:
             yield
         finally:
+            await run_in_threadpool(catching_up.stop)
             if worker is not None:
                 await run_in_threadpool(worker.stop)
             if database.async_reads is not None:
@@ -116,6 +121,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                   redoc_url="/redoc" if settings.api_docs else None)
     app.state.settings = settings
     app.state.database = database
+    cache_for(database.engine, max_bytes=settings.table_cache_mb * 1024 * 1024)
     install_problem_handlers(app)
     # Innermost: an unexpected error becomes a 500 that every layer above sees and logs, and
     # the connection stays usable.

@@ -22,6 +22,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import matplotlib
+import numpy as np
 
 matplotlib.use("Agg")
 
@@ -102,6 +103,14 @@ def palette() -> list[dict[str, Any]]:
                 else [2 * d for d in look.linestyle[1]])
         looks.append({"color": look.color, "dash": dash})
     return looks
+
+
+MARKERS_PER_LINE = 40  # beyond this a long series is all markers, and its SVG all paths
+
+
+def _every(points: int) -> int:
+    """Mark every n-th point so that a line carries at most ``MARKERS_PER_LINE`` markers."""
+    return max(1, -(-points // MARKERS_PER_LINE))
 
 
 def _dates(labels: Sequence[str]) -> list[dt.date]:
@@ -209,7 +218,8 @@ def share_chart(series: Mapping[str, Any]) -> str:
             observed = [_nan(d["arms"][arm]["observed_share"]) for d in days]
             planned = [d["arms"][arm]["expected_share"] for d in days]
             ax.plot(dates, observed, color=look.color, linestyle=look.linestyle,
-                    marker=look.marker, markersize=4, linewidth=1.6, label=f"{arm}: observed")
+                    marker=look.marker, markevery=_every(len(dates)), markersize=4,
+                    linewidth=1.6, label=f"{arm}: observed")
             ax.step(dates, planned, where="mid", color=look.color, linestyle=(0, (2, 2)),
                     linewidth=1.0, alpha=0.8, label=f"{arm}: planned")
         ax.yaxis.set_major_formatter(PercentFormatter(1.0, decimals=0))
@@ -217,8 +227,14 @@ def share_chart(series: Mapping[str, Any]) -> str:
         return _to_svg(figure, title)
 
 
+ENTRANTS_SOURCES = 5  # drawn one by one; the rest is one line, so wide experiments stay legible
+
+
 def entrants_chart(series: Mapping[str, Any]) -> str:
-    """Units entered per day through each source, one panel per arm (shared scale)."""
+    """Units entered per day through each source, one panel per arm (shared scale).
+
+    The ``ENTRANTS_SOURCES`` largest sources are drawn one by one and all others summed as
+    one line, so the chart's size does not grow with the number of sources."""
     title = "Entrants per source and arm"
     arms = list(series.get("arms", []))
     sources = list(series.get("sources", []))
@@ -231,29 +247,45 @@ def entrants_chart(series: Mapping[str, Any]) -> str:
 
 
 def entrants_figure(series: Mapping[str, Any]) -> Figure:
-    """The entrants chart's figure: each arm's name heads its own panel, above the data."""
+    """The entrants chart's figure: each arm's name heads its own panel, above the data; the
+    largest sources are drawn and the others summed into one line."""
     title = "Entrants per source and arm"
     arms = list(series.get("arms", []))
     sources = list(series.get("sources", []))
     days = list(series.get("days", []))
     dates = _dates(series.get("dates") or [d["date"] for d in days])
+    lines = _largest_sources(sources, arms)
     figure = Figure(figsize=(7.5, 2.4 + 1.9 * len(arms)), layout="constrained")
     axes = figure.subplots(len(arms), 1, sharex=True, sharey=True, squeeze=False)[:, 0]
     for ax, arm in zip(axes, arms, strict=True):
         _mark_flagged(ax, days)
-        for j, source in enumerate(sources):
+        for j, (label, entered) in enumerate(lines):
             look = style(j)
-            ax.plot(dates, source["entered"][arm], color=look.color,
-                    linestyle=look.linestyle, marker=look.marker, markersize=3.5,
-                    linewidth=1.4, label=source["source"])
+            ax.plot(dates, entered[arm], color=look.color, linestyle=look.linestyle,
+                    marker=look.marker, markevery=_every(len(dates)), markersize=3.5,
+                    linewidth=1.4, label=label)
         ax.set_title(f"arm {arm}", loc="right", fontsize=9.5, fontweight="bold", color=SLATE)
         ax.set_ylabel("Units entered")
     axes[0].set_title(title, loc="left")
     axes[-1].set_xlabel("Day of entry")
     _date_axis(axes[-1])
-    axes[-1].legend(ncol=min(4, len(sources)), loc="upper center",
+    axes[-1].legend(ncol=min(4, len(lines)), loc="upper center",
                     bbox_to_anchor=(0.5, -0.35), title="entry source")
     return figure
+
+
+def _largest_sources(sources: Sequence[Mapping[str, Any]], arms: Sequence[str]
+                     ) -> list[tuple[str, dict[str, Any]]]:
+    """``(label, {arm: daily counts})`` of the largest sources, then the others summed."""
+    totals = [sum(sum(source["entered"][arm]) for arm in arms) for source in sources]
+    order = sorted(range(len(sources)), key=lambda i: -totals[i])
+    if len(sources) <= ENTRANTS_SOURCES + 1:
+        return [(str(sources[i]["source"]), sources[i]["entered"]) for i in sorted(order)]
+    shown = order[:ENTRANTS_SOURCES]
+    rest = order[ENTRANTS_SOURCES:]
+    others = {arm: np.sum([sources[i]["entered"][arm] for i in rest], axis=0) for arm in arms}
+    return [*((str(sources[i]["source"]), sources[i]["entered"]) for i in shown),
+            (f"{len(rest)} other sources", others)]
 
 
 def engagement_chart(series: Mapping[str, Any], metric: str) -> str:
@@ -271,7 +303,8 @@ def engagement_chart(series: Mapping[str, Any], metric: str) -> str:
             look = style(i)
             values = [_nan(d["arms"][arm]["engagement"].get(metric)) for d in days]
             ax.plot(dates, values, color=look.color, linestyle=look.linestyle,
-                    marker=look.marker, markersize=4, linewidth=1.6, label=arm)
+                    marker=look.marker, markevery=_every(len(dates)), markersize=4,
+                    linewidth=1.6, label=arm)
         _finish_daily(ax, title, f"Mean {metric} per entrant", handles, ncol=4)
         return _to_svg(figure, title)
 

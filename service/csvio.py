@@ -8,6 +8,7 @@ import io
 import itertools
 import re
 from collections import Counter
+from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -346,14 +347,26 @@ def write_observations_csv(rows: list[dict[str, object]]) -> str:
     formula are escaped (:func:`neutralise_cell`); the reader undoes it.
     """
     names = sorted({name for row in rows for name in (row.get("metrics") or {})})  # type: ignore[union-attr]
+    return observations_csv_header(names) + observations_csv_lines(rows, names)
+
+
+def observations_csv_header(names: list[str]) -> str:
+    """The header line of an export whose metrics are ``names`` (in that order)."""
     header = ["date", "arm", "source", "entered"]
     header += [f"{name}.{stat}" for name in names for stat in ("n", "sum", "sum_sq")]
+    buffer = io.StringIO(newline="")
+    csv.writer(buffer, lineterminator="\n").writerow(header)
+    return buffer.getvalue()
+
+
+def observations_csv_lines(rows: Iterable[dict[str, object]], names: list[str]) -> str:
+    """The lines of ``rows`` (no header), columns as :func:`observations_csv_header` names:
+    a streamed export writes its rows a part at a time."""
     buffer = io.StringIO(newline="")
     writer = csv.writer(buffer, lineterminator="\n")
     # QUOTE_MINIMAL quotes "\n" (the line terminator) but not a lone "\r", which readers take
     # for a line end: rows holding one are written fully quoted.
     quoting_writer = csv.writer(buffer, lineterminator="\n", quoting=csv.QUOTE_ALL)
-    writer.writerow(header)
     for row in rows:
         metrics: dict[str, dict[str, object]] = row.get("metrics") or {}  # type: ignore[assignment]
         cells = [row["date"], neutralise_cell(str(row["arm"])),

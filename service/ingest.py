@@ -22,6 +22,7 @@ from detectors.data import (
     MAX_METRICS,
     MAX_UNITS,
     STAT_FIELDS,
+    ObservationTable,
     records_to_frame,
     validate_frame,
 )
@@ -212,11 +213,20 @@ def upsert_rows(session: Session, experiment: Experiment, rows: ObservationColum
 def check_experiment_limits(rows: ObservationColumns) -> None:
     """Raise InputError when an experiment's rows (stored and uploaded together) exceed what
     it may hold: :data:`MAX_METRICS` metrics and :data:`MAX_UNITS` units in all."""
+    _check_limits(len(rows.metrics), float(np.sum(rows.entered, dtype=np.float64)))
+
+
+def check_table_limits(table: ObservationTable) -> None:
+    """:func:`check_experiment_limits` on the experiment's table (kept in memory)."""
+    _check_limits(len(table.metrics), float(np.sum(table.entered, dtype=np.float64)))
+
+
+def _check_limits(metrics: int, total: float) -> None:
+    # Totals in float64: int64 could wrap.
     problems: list[Problem] = []
-    if len(rows.metrics) > MAX_METRICS:
-        problems.append(Problem("metrics", f"the experiment would carry {len(rows.metrics)} "
+    if metrics > MAX_METRICS:
+        problems.append(Problem("metrics", f"the experiment would carry {metrics} "
                                 f"metrics; at most {MAX_METRICS} are accepted per experiment"))
-    total = float(np.sum(rows.entered, dtype=np.float64))  # float64: int64 could wrap
     if total > MAX_UNITS:
         problems.append(Problem("entered", f"the experiment would hold {total:,.0f} units; at "
                                 f"most {MAX_UNITS:,} (10^12) are accepted in all"))

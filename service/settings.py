@@ -63,6 +63,14 @@ class Settings(BaseSettings):
                            "their scripts, styles and fonts from public CDNs (the OpenAPI "
                            "document at /openapi.json is always served)")
 
+    catch_up_seconds: float = Field(
+        60.0, ge=0, description="how often stale diagnoses (rows committed by a process that "
+                                "stopped before diagnosing them) are caught up; 0: at startup "
+                                "only")
+    table_cache_mb: int = Field(
+        512, ge=0, description="memory per worker process for observation tables kept between "
+                               "requests (0 disables the cache)")
+
     @field_validator("admin_token", mode="before")
     @classmethod
     def _strong_admin_token(cls, value: object) -> object:

@@ -6,7 +6,9 @@ Nothing here touches the database, so every page can be rendered and checked in 
 from __future__ import annotations
 
 import datetime as dt
-from collections.abc import Mapping, Sequence
+import threading
+from collections import OrderedDict
+from collections.abc import Callable, Mapping, Sequence
 from functools import cache
 from typing import Any
 
@@ -14,6 +16,7 @@ from jinja2 import Environment, PackageLoader, select_autoescape
 from markupsafe import Markup
 
 from .. import charts
+from ..http import entity_tag
 from . import assets
 
 STATUS_LABELS = {
@@ -119,7 +122,8 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
                            sensitivity: Mapping[str, Any] | None = None,
                            metric: str | None = None,
                            refreshed_at: Any = None,
-                           csv_href: str | None = None) -> str:
+                           csv_href: str | None = None,
+                           series_tag: str | None = None) -> str:
     """The status page of one experiment.
 
     ``experiment``: ``id, title, arms, start_date``; ``diagnosis`` and ``series``: the API's
@@ -127,12 +131,15 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
     ``reweight``: a reweight answer for ``metric`` (default: the first metric), or
     ``reweight_problem`` saying why there is none; ``campaigns``: registered campaigns with
     their checks and ``sensitivity`` the sensitivity answer, as the API gives them;
-    ``refreshed_at``: when the diagnosis was computed; ``csv_href``: where the series CSV is.
+    ``refreshed_at``: when the diagnosis was computed; ``csv_href``: where the series CSV is;
+    ``series_tag``: the stored entity tag of ``series``, under which its charts are kept
+    between requests (computed when absent).
     """
     context = experiment_context(
         experiment=experiment, diagnosis=diagnosis, series=series, alerts=alerts,
         effects={}, campaigns=campaigns, sensitivity=sensitivity, metric=metric,
-        refreshed_at=refreshed_at, diagnosis_version=diagnosis_version, mode="page")
+        refreshed_at=refreshed_at, diagnosis_version=diagnosis_version, mode="page",
+        series_tag=series_tag)
     chosen = context["metric"]
     if chosen is not None or reweight is not None or reweight_problem is not None:
         context["effects"] = [effect_view(reweight, reweight_problem, chosen)]
@@ -147,7 +154,7 @@ def experiment_context(*, experiment: Mapping[str, Any], diagnosis: Mapping[str,
                        campaigns: Sequence[Mapping[str, Any]],
                        sensitivity: Mapping[str, Any] | None, metric: str | None,
                        refreshed_at: Any, diagnosis_version: int | None,
-                       mode: str) -> dict[str, Any]:
+                       mode: str, series_tag: str | None = None) -> dict[str, Any]:
     """What the page and the report show, from the API's documents.
 
     ``effects``: per metric, a reweight answer or why there is none. The server-drawn charts
@@ -161,10 +168,14 @@ def experiment_context(*, experiment: Mapping[str, Any], diagnosis: Mapping[str,
     chart_svgs: dict[str, Markup] = {}
     engagement: dict[str, Markup] = {}
     if series and series.get("days"):
-        chart_svgs["share"] = Markup(charts.share_chart(series))
-        chart_svgs["entrants"] = Markup(charts.entrants_chart(series))
+        # Drawn once per stored series (its tag) and kept between requests.
+        tag = series_tag or entity_tag(dict(series))
+        chart_svgs["share"] = Markup(_drawn(("share", tag), charts.share_chart, series))
+        chart_svgs["entrants"] = Markup(_drawn(("entrants", tag), charts.entrants_chart,
+                                               series))
         shown = metrics if mode == "report" else [chosen] if chosen else []
-        engagement = {m: Markup(charts.engagement_chart(series, m)) for m in shown}
+        engagement = {m: Markup(_drawn(("engagement", tag, m), charts.engagement_chart,
+                                       series, m)) for m in shown}
     incidents = incident_views(diagnosis)
     shown_advice = {line for incident in incidents for line in incident["advice"]}
     advice = [line for line in (diagnosis or {}).get("advice", []) if line not in shown_advice]
@@ -223,7 +234,8 @@ def effect_view(reweight: Mapping[str, Any] | None, problem: str | None,
     return {"metric": (reweight or {}).get("metric", metric), "rows": rows,
             "problem": problem if not rows else None, "basis": effect_basis(reweight),
             "caveats": _caveats(reweight),
-            "chart": Markup(charts.effect_chart(reweight)) if rows and reweight else None}
+            "chart": Markup(_drawn(("effect", entity_tag(dict(reweight))), charts.effect_chart,
+                                   reweight)) if rows and reweight else None}
 
 
 def estimate_view(estimate: Mapping[str, Any]) -> dict[str, str]:
@@ -351,6 +363,28 @@ def format_span(start: Any, end: Any) -> str:
     if start[:4] == end[:4]:
         return f"{start} to {end[5:]}"
     return f"{start} to {end}"
+
+
+CHARTS_KEPT = 64
+_drawn_charts: OrderedDict[tuple[str, ...], str] = OrderedDict()
+_drawn_lock = threading.Lock()
+
+
+def _drawn(key: tuple[str, ...], draw: Callable[..., str], *args: Any) -> str:
+    """A chart drawn once per document: re-reading a page draws nothing (a chart of a year
+    of days costs far more than the rest of the page). The most recent ``CHARTS_KEPT``
+    charts are kept."""
+    with _drawn_lock:
+        svg = _drawn_charts.get(key)
+        if svg is not None:
+            _drawn_charts.move_to_end(key)
+            return svg
+    svg = draw(*args)
+    with _drawn_lock:
+        _drawn_charts[key] = svg
+        while len(_drawn_charts) > CHARTS_KEPT:
+            _drawn_charts.popitem(last=False)
+    return svg
 
 
 def render_index_page(experiments: Sequence[Mapping[str, Any]]) -> str:

@@ -15,7 +15,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from detectors import InputError
+from detectors import InputError, ObservationTable
 from detectors.contamination import cells_from_document
 from detectors.errors import UndefinedEstimateError
 from detectors.honest import default_effect
@@ -30,7 +30,7 @@ from ..routers.alerts import alert_out
 from ..routers.common import base_url
 from ..settings import Settings
 from ..tokens import Principal, Scope, authenticate
-from ..traffic import sensitivity_document, stored_arm_traffic, thresholds_of
+from ..traffic import ArmTraffic, sensitivity_document, thresholds_of
 from . import assets
 from .export import series_csv
 from .render import (
@@ -150,8 +150,10 @@ def experiment_page(experiment_id: str, request: Request,
                              .order_by(Alert.id.desc()))
     alert_rows = [alert_out(request, a).model_dump(mode="json") for a in alerts]
     chosen, _ = pick_metric(list((series or {}).get("metrics", [])), metric)
-    effect, problem = _effect(session, experiment, document, chosen)
-    traffic = stored_arm_traffic(session, experiment)
+    table = load_table(session, experiment)  # cached per data version: read once per page
+    effect, problem = _effect(table, experiment, document, chosen)
+    traffic = (ArmTraffic.from_table(table, schedule_for(experiment))
+               if table is not None else None)
     campaigns = [campaign_document(row, experiment, traffic)
                  for row in stored_campaigns(session, experiment_id)]
     alpha, max_window = thresholds_of(document)
@@ -171,7 +173,8 @@ def experiment_page(experiment_id: str, request: Request,
         reweight_problem=problem, diagnosis_version=snapshot.version if snapshot else None,
         links=links, campaigns=campaigns, sensitivity=sensitivity, metric=metric,
         refreshed_at=snapshot.created_at.isoformat() if snapshot else None,
-        csv_href=f"/experiments/{experiment_id}/series.csv")
+        csv_href=f"/experiments/{experiment_id}/series.csv",
+        series_tag=snapshot.series_etag if snapshot else None)
     return HTMLResponse(html, headers=PAGE_HEADERS)
 
 
@@ -193,13 +196,13 @@ def series_csv_file(experiment_id: str, request: Request,
         "Content-Disposition": f'attachment; filename="{experiment_id}-series.csv"'})
 
 
-def _effect(session: Session, experiment: Experiment, document: dict[str, Any] | None,
-            metric: str | None) -> tuple[dict[str, Any] | None, str | None]:
+def _effect(table: ObservationTable | None, experiment: Experiment,
+            document: dict[str, Any] | None, metric: str | None
+            ) -> tuple[dict[str, Any] | None, str | None]:
     """The effect on ``metric`` as the reweight endpoint answers a call without options (the
     honest default that leaves the incidents' cells out, with bounds); or why there is none."""
     if document is None or metric is None:
         return None, "No metric has been uploaded, so there is no effect to estimate."
-    table = load_table(session, experiment)
     if table is None:
         return None, "No observations are stored."
     try:

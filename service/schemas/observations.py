@@ -80,6 +80,8 @@ class ObservationOut(BaseModel):
 
 class ObservationList(BaseModel):
     rows: list[ObservationOut]
+    next: str | None = Field(None, description="cursor of the next page (with `limit`); null "
+                                               "on the last page and in a streamed answer")
 
 
 class DiagnosisRef(BaseModel):
