@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: install test demo lint serve openapi bench bench-quick fuzz clean
+.PHONY: install install-spark test demo lint serve openapi bench bench-quick fuzz clean
 
 install: $(STAMP)
 
@@ -13,6 +13,11 @@ $(STAMP): pyproject.toml
 	$(BIN)/python -m pip install --quiet --upgrade pip
 	$(BIN)/python -m pip install --quiet -e '.[dev,postgres]'
 	touch $(STAMP)
+
+# The Spark engine of `inrush pull` (pyspark, about 300 MB; needs Java 17+). CI installs it so
+# the Spark tests run; without it they are skipped with the reason.
+install-spark: install
+	$(BIN)/python -m pip install --quiet -e '.[dev,postgres,spark]'
 
 test: install
 	$(BIN)/python -m pytest -q
