@@ -36,14 +36,14 @@ class Warehouse(_Strict):
     @field_validator("url")
     @classmethod
     def _known_scheme(cls, url: str) -> str:
-        scheme = url.partition("://")[0].lower()
+        scheme = url.partition("://")[0].lower().partition("+")[0]
         if "://" not in url or scheme not in ("duckdb", "postgresql", "postgres", "spark"):
             raise ValueError("must start with duckdb://, postgresql:// or spark://")
         return url
 
     @property
     def engine(self) -> Literal["duckdb", "postgres", "spark"]:
-        scheme = self.url.partition("://")[0].lower()
+        scheme = self.url.partition("://")[0].lower().partition("+")[0]
         return "postgres" if scheme in ("postgresql", "postgres") else scheme  # type: ignore[return-value]
 
 

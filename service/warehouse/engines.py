@@ -198,7 +198,7 @@ class SparkEngine:
             self._spark = (SparkSession.builder.master(master).appName("inrush-pull")
                            .config("spark.sql.session.timeZone", "UTC")
                            .config("spark.ui.enabled", "false").getOrCreate())
-        except Exception as error:  # noqa: BLE001 - the JVM's errors have no common base
+        except Exception as error:
             raise _refused("warehouse.url", error) from None
         # A session shared with the caller keeps its own zone afterwards.
         self._spark.conf.set("spark.sql.session.timeZone", "UTC")
@@ -211,7 +211,7 @@ class SparkEngine:
         try:
             frame = (reader.parquet(files) if _files_kind(files, key) == "parquet"
                      else reader.csv(files, header=True, inferSchema=True))
-        except Exception as error:  # noqa: BLE001
+        except Exception as error:
             raise _refused(f"{key}.files", error) from None
         frame.createOrReplaceTempView(view)
         return view
@@ -219,14 +219,14 @@ class SparkEngine:
     def column_types(self, relation: str, key: str) -> dict[str, str]:
         try:
             frame = self._spark.table(_quoted(relation, "`"))
-        except Exception as error:  # noqa: BLE001
+        except Exception as error:
             raise _refused(f"{key}.table", error) from None
         return {name: kind.lower() for name, kind in frame.dtypes}
 
     def fetch(self, sql: str) -> list[tuple[Any, ...]]:
         try:
             return [tuple(row) for row in self._spark.sql(sql).collect()]
-        except Exception as error:  # noqa: BLE001
+        except Exception as error:
             raise _refused("warehouse", error) from None
 
     def close(self) -> None:

@@ -88,9 +88,10 @@ def build_query(config: PullConfig, cutoff: dt.datetime, dialect: Dialect,
         window = f"c.t0 + INTERVAL {metric.window_days} DAY"
         mature = f"c.a IS NOT NULL AND {window} <= {cut}"
         value = f"CAST({_id(metric.value)} AS DOUBLE)" if metric.value else "1"
+        events = _id(relations.get(metric_view(k), metric_view(k)))
         ctes.append(f"""m{k} AS (
   SELECT c.u, SUM({value}) AS x
-  FROM clean AS c JOIN {_id(relations.get(metric_view(k), metric_view(k)))} AS v ON v.{_id(metric.unit)} = c.u
+  FROM clean AS c JOIN {events} AS v ON v.{_id(metric.unit)} = c.u
   WHERE {mature}
     AND INRUSH_INSTANT(v.{_id(metric.time)}) >= c.t0
     AND INRUSH_INSTANT(v.{_id(metric.time)}) < {window}

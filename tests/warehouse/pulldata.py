@@ -123,7 +123,9 @@ def write_parquet(folder: Path, exposures: pd.DataFrame, orders: pd.DataFrame) -
         connection.execute(f"COPY part TO '{folder}/exposures/part-{index}.parquet' "
                            "(FORMAT parquet)")
     connection.register("orders", orders)
-    connection.execute(f"COPY orders TO '{folder}/orders.parquet' (FORMAT parquet)")
+    # Microseconds, as logs store them (pandas' nanoseconds are a type Spark cannot read).
+    connection.execute("COPY (SELECT user_id, CAST(ordered_at AS TIMESTAMP) AS ordered_at, "
+                       f"amount FROM orders) TO '{folder}/orders.parquet' (FORMAT parquet)")
     connection.close()
 
 
