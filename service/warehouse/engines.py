@@ -197,7 +197,9 @@ class SparkEngine:
         try:
             self._spark = (SparkSession.builder.master(master).appName("inrush-pull")
                            .config("spark.sql.session.timeZone", "UTC")
-                           .config("spark.ui.enabled", "false").getOrCreate())
+                           .config("spark.ui.enabled", "false")
+                           .config("spark.ui.showConsoleProgress", "false").getOrCreate())
+            self._spark.sparkContext.setLogLevel("ERROR")
         except Exception as error:
             raise _refused("warehouse.url", error) from None
         # A session shared with the caller keeps its own zone afterwards.
