@@ -25,8 +25,9 @@ test: install
 lint: install
 	$(BIN)/ruff check detectors service tests benchmarks
 
+# `make demo DEMO_FLAGS=--pull` feeds the demo from its unit-level Parquet logs (inrush pull).
 demo: install
-	$(BIN)/inrush demo
+	$(BIN)/inrush demo $(DEMO_FLAGS)
 
 serve: install
 	$(BIN)/inrush serve

@@ -140,3 +140,27 @@ def _bad_input(error: InputError) -> int:
         where = f"row {problem.row}: " if problem.row is not None else ""
         print(f"  {where}{problem.field}: {problem.message}", file=sys.stderr)
     return EXIT_BAD_INPUT
+
+
+def feed_demo(client: Any) -> None:
+    """``inrush demo --pull``: create the demo experiment on the server behind ``client`` and
+    upload the cube pulled from the demo's Parquet logs as of its last day."""
+    from ..demo import scenario, units
+    from ..warehouse.config import load_config
+    from ..warehouse.deliver import upload_with
+    from ..warehouse.pull import run_pull
+
+    response = client.post("/v1/experiments", json={
+        "id": scenario.EXPERIMENT_ID, "title": scenario.TITLE,
+        "start_date": scenario.START.isoformat(), "arms": list(scenario.ARMS),
+        "allocation": [{"from": scenario.START.isoformat(), "weights": [0.5, 0.5]}]})
+    response.raise_for_status()
+    as_of = scenario.START + dt.timedelta(days=scenario.DAYS - 1)
+    print(f"$ inrush pull {units.CONFIG_PATH} --as-of {as_of} --upload "
+          f"--experiment {scenario.EXPERIMENT_ID}\n")
+    result = run_pull(load_config(units.CONFIG_PATH), as_of)
+    report = result.report()
+    done = upload_with(client, result.cube, experiment=scenario.EXPERIMENT_ID)
+    report["delivered"] = {"experiment": scenario.EXPERIMENT_ID, "written": done.written,
+                           "status": done.status}
+    print(format_report(report))
