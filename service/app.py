@@ -36,6 +36,7 @@ from .routers import (
     health,
     observations,
     problem_types,
+    pulls,
     reweight,
     sensitivity,
     tokens,
@@ -53,7 +54,7 @@ Authenticate with `Authorization: Bearer TOKEN`; scopes are read < write < admin
 """
 
 ROUTERS = (health.router, experiments.router, observations.router, diagnosis.router,
-           reweight.router, campaigns.router, sensitivity.router, alerts.router,
+           reweight.router, campaigns.router, sensitivity.router, pulls.router, alerts.router,
            deliveries.router, tokens.router, problem_types.router, pages_router)
 # Models referenced from hand-written OpenAPI fragments (bodies parsed by the service itself).
 DOCUMENTED_MODELS: list[type[BaseModel]] = [ProblemDetails, *observations.DOCUMENTED_MODELS]
@@ -96,12 +97,15 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             await run_in_threadpool(database.migrate)
         # Webhook deliveries (INRUSH_NOTIFY_WORKER=0 leaves them to another process).
         worker = start_worker(database, notify_settings)
+        scheduler = _start_pulls(database, settings)
         _freeze_startup_objects()
         try:
             yield
         finally:
             if worker is not None:
                 await run_in_threadpool(worker.stop)
+            if scheduler is not None:
+                await run_in_threadpool(scheduler.stop)
             if database.async_reads is not None:
                 await database.async_reads.close()
             database.dispose()
@@ -123,6 +127,16 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         app.include_router(router)
     app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]
     return app
+
+
+def _start_pulls(database: Database, settings: Settings) -> Any:
+    """The daily pull scheduler (``INRUSH_PULL_AT``), or ``None`` when it is off."""
+    if not settings.pull_at:
+        return None
+    from .warehouse.schedule import PullScheduler, parse_time_of_day
+
+    return PullScheduler(database, at=parse_time_of_day(settings.pull_at),
+                         future_days=settings.future_days).start()
 
 
 def _openapi(app: FastAPI) -> dict[str, Any]:

@@ -41,6 +41,11 @@ class Settings(BaseSettings):
         4, ge=0, description="extra connections a worker process may open under load "
                              "(background work; closed again when returned)")
 
+    pull_at: str | None = Field(
+        None, pattern=r"^([01][0-9]|2[0-3]):[0-5][0-9]$",
+        description="UTC time of day (HH:MM) at which `inrush serve` runs the pulls of "
+                    "experiments that have a pull config; unset: no scheduled pulls")
+
     def base_url(self, fallback: str) -> str:
         """The public base URL without a trailing slash (``fallback`` when unset)."""
         return (self.public_url or fallback).rstrip("/")

@@ -10,11 +10,12 @@ import json
 import os
 import sys
 from pathlib import Path
-from typing import Any
-
-from detectors.errors import InputError
+from typing import TYPE_CHECKING, Any
 
 from . import EXIT_BAD_INPUT, EXIT_FAILURE, EXIT_OK
+
+if TYPE_CHECKING:  # the command line loads this module for --help: nothing heavy at import
+    from detectors.errors import InputError
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
@@ -51,6 +52,8 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
 
 
 def run_pull_command(args: argparse.Namespace) -> int:
+    from detectors.errors import InputError
+
     from ..warehouse.config import load_config
     from ..warehouse.deliver import UploadError, store, upload, write_csv
     from ..warehouse.pull import default_as_of, run_pull
@@ -127,6 +130,8 @@ def format_report(report: dict[str, Any]) -> str:
 
 
 def _as_of(text: str) -> dt.date:
+    from detectors.errors import InputError
+
     try:
         return dt.date.fromisoformat(text.strip())
     except ValueError:

@@ -102,14 +102,16 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
                            diagnosis_version: int | None = None,
                            links: Mapping[str, str] | None = None,
                            campaigns: Sequence[Mapping[str, Any]] = (),
-                           sensitivity: Mapping[str, Any] | None = None) -> str:
+                           sensitivity: Mapping[str, Any] | None = None,
+                           pull: Mapping[str, Any] | None = None) -> str:
     """The status page of one experiment.
 
     ``experiment``: ``id, title, arms, start_date``; ``diagnosis`` and ``series``: the API's
     documents (``None`` before any unit); ``alerts``: unresolved alerts as the API lists them;
     ``reweight``: a reweight answer for the first metric, or ``reweight_problem`` saying why
     there is none; ``campaigns``: registered campaigns with their checks and ``sensitivity``
-    the sensitivity answer, as the API gives them.
+    the sensitivity answer, as the API gives them; ``pull``: ``{"last": run}`` when the
+    experiment has a daily pull (``run`` as the pull resource lists it, or ``None``).
     """
     status = diagnosis.get("status") if diagnosis else "no_data"
     metrics = list((series or {}).get("metrics", []))
@@ -132,7 +134,8 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
         reweight_problem=reweight_problem, caveats=caveats,
         sources=source_totals(series) if series else [],
         arms=list(experiment.get("arms", [])), version=diagnosis_version,
-        links=dict(links or {}), campaigns=list(campaigns), sensitivity=sensitivity)
+        links=dict(links or {}), campaigns=list(campaigns), sensitivity=sensitivity,
+        pull=pull)
 
 
 def render_index_page(experiments: Sequence[Mapping[str, Any]]) -> str:

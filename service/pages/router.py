@@ -145,19 +145,33 @@ def experiment_page(experiment_id: str, request: Request,
     alpha, max_window = thresholds_of(document)
     sensitivity = (sensitivity_document(traffic, alpha=alpha, max_window=max_window)
                    if traffic is not None else None)
+    pull = _pull_summary(session, experiment_id)
     base = base_url(request)
     links = {"diagnosis (JSON)": f"{base}/v1/experiments/{experiment_id}/diagnosis",
              "daily series (JSON)": f"{base}/v1/experiments/{experiment_id}/series",
              "alerts (JSON)": f"{base}/v1/alerts?experiment={experiment_id}",
              "campaigns (JSON)": f"{base}/v1/experiments/{experiment_id}/campaigns",
              "sensitivity (JSON)": f"{base}/v1/experiments/{experiment_id}/sensitivity"}
+    if pull is not None:
+        links["daily pull (JSON)"] = f"{base}/v1/experiments/{experiment_id}/pull"
     html = render_experiment_page(
         experiment={"id": experiment.id, "title": experiment.title, "arms": experiment.arms,
                     "start_date": experiment.start_date.isoformat()},
         diagnosis=document, series=series, alerts=alert_rows, reweight=effect,
         reweight_problem=problem, diagnosis_version=snapshot.version if snapshot else None,
-        links=links, campaigns=campaigns, sensitivity=sensitivity)
+        links=links, campaigns=campaigns, sensitivity=sensitivity, pull=pull)
     return HTMLResponse(html, headers=PAGE_HEADERS)
+
+
+def _pull_summary(session: Session, experiment_id: str) -> dict[str, Any] | None:
+    """The scheduled pull's latest run, or ``None`` without a pull config."""
+    from ..db.pull_models import PullSchedule
+    from ..routers.pulls import recent_runs
+
+    if session.get(PullSchedule, experiment_id) is None:
+        return None
+    runs = recent_runs(session, experiment_id, limit=1)
+    return {"last": runs[0].model_dump(mode="json") if runs else None}
 
 
 def _effect(session: Session, experiment: Experiment, document: dict[str, Any] | None,

@@ -115,35 +115,41 @@ def store(cube: Cube, *, database_url: str, experiment: str,
           today: dt.date | None = None) -> Delivered:
     """Write into the service's own database through its ingest path (same validation, same
     upsert, same re-diagnosis and alerts as an HTTP upload)."""
+    from ..db.session import Database
+    from ..settings import Settings
+
+    database = Database(database_url, pool_size=1, max_overflow=0)
+    try:
+        return store_into(database, cube, experiment=experiment, today=today,
+                          future_days=Settings(database_url=database_url).future_days)
+    finally:
+        database.dispose()
+
+
+def store_into(database: Any, cube: Cube, *, experiment: str, future_days: int,
+               today: dt.date | None = None) -> Delivered:
+    """:func:`store` through an open :class:`service.db.session.Database`."""
     from detectors.data import records_to_frame
 
     from ..alerting import CORRECTED_DATA, LATER_DATA
     from ..analysis import NO_DATA, refresh_diagnosis
     from ..db.locks import lock_experiment_for_write
     from ..db.models import utcnow
-    from ..db.session import Database
     from ..ingest import ParsedBody, upsert_rows, validate_rows
-    from ..settings import Settings
 
-    settings = Settings(database_url=database_url)
-    database = Database(database_url, pool_size=1, max_overflow=0)
-    try:
-        with database.sessions() as session:
-            locked = lock_experiment_for_write(session, experiment)
-            if locked is None:
-                raise InputError([Problem("experiment", f"no experiment {experiment!r} in "
-                                          "the database")])
-            check_arms(cube, locked.arms, experiment)
-            rows = cube.with_arms(locked.arms).rows
-            columns = validate_rows(ParsedBody(records_to_frame(rows), []), locked,
-                                    today=today or utcnow().date(),
-                                    future_days=settings.future_days)
-            staged = upsert_rows(session, locked, columns)
-            refresh = refresh_diagnosis(session, locked, staged=staged,
-                                        cause=CORRECTED_DATA if staged.updated else LATER_DATA)
-            session.commit()
-            status = refresh.snapshot.status
-            return Delivered(len(rows), None if status == NO_DATA else status,
-                             {"inserted": staged.inserted, "updated": staged.updated})
-    finally:
-        database.dispose()
+    with database.sessions() as session:
+        locked = lock_experiment_for_write(session, experiment)
+        if locked is None:
+            raise InputError([Problem("experiment", f"no experiment {experiment!r} in "
+                                      "the database")])
+        check_arms(cube, locked.arms, experiment)
+        rows = cube.with_arms(locked.arms).rows
+        columns = validate_rows(ParsedBody(records_to_frame(rows), []), locked,
+                                today=today or utcnow().date(), future_days=future_days)
+        staged = upsert_rows(session, locked, columns)
+        refresh = refresh_diagnosis(session, locked, staged=staged,
+                                    cause=CORRECTED_DATA if staged.updated else LATER_DATA)
+        session.commit()
+        status = refresh.snapshot.status
+        return Delivered(len(rows), None if status == NO_DATA else status,
+                         {"inserted": staged.inserted, "updated": staged.updated})
