@@ -80,3 +80,15 @@ def test_store_goes_through_the_ingest_path(client: TestClient, pulled: PullResu
     with pytest.raises(InputError) as error:
         store(pulled.cube, database_url=url, experiment="no-such-experiment")
     assert error.value.problems[0].field == "experiment"
+
+
+def test_demo_logs_pulled_show_the_campaign_days(client: TestClient,
+                                                 capsys: pytest.CaptureFixture[str]) -> None:
+    from service.cli.pull import feed_demo
+
+    feed_demo(client)
+    assert "exposed to more than one arm" in capsys.readouterr().out
+    diagnosis = client.get("/v1/experiments/route-cards/diagnosis").json()
+    assert diagnosis["status"] == "alert"
+    # The scenario's newsletter days (service/demo/scenario.py: days 15 and 16).
+    assert {"2026-11-09", "2026-11-10"} <= {d["date"] for d in diagnosis["flagged_days"]}
