@@ -127,7 +127,7 @@ class DuckDBEngine:
 
 
 class PostgresEngine:
-    """PostgreSQL through psycopg, in a read-only transaction; tables only."""
+    """PostgreSQL through psycopg, in a read-only session; tables only."""
 
     dialect: Dialect = "postgres"
 
@@ -142,9 +142,11 @@ class PostgresEngine:
         libpq = make_url(url).set(drivername="postgresql").render_as_string(
             hide_password=False)
         try:
-            self._connection = psycopg.connect(libpq, connect_timeout=10)
+            # Autocommit: each statement its own transaction, read-only for the session, so a
+            # failed statement leaves the session settings in place.
+            self._connection = psycopg.connect(libpq, connect_timeout=10, autocommit=True)
             self._connection.execute("SET TIME ZONE 'UTC'")
-            self._connection.execute("SET TRANSACTION READ ONLY")
+            self._connection.execute("SET SESSION CHARACTERISTICS AS TRANSACTION READ ONLY")
         except psycopg.Error as error:
             raise _refused("warehouse.url", error) from None
         self._error = psycopg.Error
@@ -159,8 +161,6 @@ class PostgresEngine:
         try:
             cursor = self._connection.execute(f"SELECT * FROM {_quoted(relation)} LIMIT 0")
         except self._error as error:
-            self._connection.rollback()
-            self._connection.execute("SET TIME ZONE 'UTC'")
             raise _refused(f"{key}.table", error) from None
         types = self._connection.adapters.types
         result = {}
@@ -176,7 +176,6 @@ class PostgresEngine:
             raise _refused("warehouse", error) from None
 
     def close(self) -> None:
-        self._connection.rollback()
         self._connection.close()
 
 

@@ -154,3 +154,13 @@ def test_spark_on_parquet_files(spark: None, files: Path,
         [(r["date"], r["arm"], r["source"], r["entered"]) for r in duck.cube.rows]
     assert [r["metrics"]["visits_2d"] for r in result.cube.rows] == \
         [r["metrics"]["visits_2d"] for r in duck.cube.rows]
+
+
+@pytest.mark.postgres
+def test_postgres_names_a_missing_table(postgres_url: str) -> None:
+    from detectors.errors import InputError
+
+    with pytest.raises(InputError) as error:
+        _pull(postgres_url, None, 'table = "logs.nothing_here"', 'table = "orders"')
+    assert error.value.problems[0].field == "exposures.table"
+    assert "nothing_here" in error.value.problems[0].message
