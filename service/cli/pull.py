@@ -74,9 +74,13 @@ def run_pull_command(args: argparse.Namespace) -> int:
             report["delivered"] = {"output": args.output, "written": len(result.cube.rows)}
         elif args.upload:
             token = args.token or os.environ.get("INRUSH_TOKEN")
-            done = upload(result.cube, url=args.url, token=token, experiment=args.experiment)
+            done = upload(result.cube, url=args.url, token=token, experiment=args.experiment,
+                          report=dict(report))
             report["delivered"] = {"url": args.url, "experiment": args.experiment,
                                    "written": done.written, "status": done.status}
+            if "report_error" in done.detail:
+                print(f"inrush pull: the cube was written but its report was not recorded: "
+                      f"{done.detail['report_error']}", file=sys.stderr)
         else:
             from ..settings import Settings
 
@@ -165,7 +169,8 @@ def feed_demo(client: Any) -> None:
           f"--experiment {scenario.EXPERIMENT_ID}\n")
     result = run_pull(load_config(units.CONFIG_PATH), as_of)
     report = result.report()
-    done = upload_with(client, result.cube, experiment=scenario.EXPERIMENT_ID)
+    done = upload_with(client, result.cube, experiment=scenario.EXPERIMENT_ID,
+                       report=dict(report))
     report["delivered"] = {"experiment": scenario.EXPERIMENT_ID, "written": done.written,
                            "status": done.status}
     print(format_report(report))

@@ -164,13 +164,13 @@ def experiment_page(experiment_id: str, request: Request,
 
 
 def _pull_summary(session: Session, experiment_id: str) -> dict[str, Any] | None:
-    """The scheduled pull's latest run, or ``None`` without a pull config."""
+    """The latest pull run, or ``None`` without a pull config or any run."""
     from ..db.pull_models import PullSchedule
     from ..routers.pulls import recent_runs
 
-    if session.get(PullSchedule, experiment_id) is None:
-        return None
     runs = recent_runs(session, experiment_id, limit=1)
+    if not runs and session.get(PullSchedule, experiment_id) is None:
+        return None
     return {"last": runs[0].model_dump(mode="json") if runs else None}
 
 

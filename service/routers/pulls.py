@@ -8,13 +8,13 @@ from sqlalchemy.orm import Session
 
 from detectors.errors import InputError
 
-from ..auth import require_admin, require_read
+from ..auth import require_admin, require_read, require_write
 from ..db.models import utcnow
 from ..db.pull_models import PullRun, PullSchedule
 from ..db.session import get_session
 from ..problems import ProblemError, input_error_response
 from ..schemas.common import problem_responses
-from ..schemas.pulls import PullConfigIn, PullOut, PullRunOut
+from ..schemas.pulls import PullConfigIn, PullOut, PullRunIn, PullRunOut
 from ..tokens import Principal
 from ..warehouse.config import config_from_dict
 from .common import get_experiment
@@ -43,18 +43,42 @@ def put_pull(experiment_id: str, body: PullConfigIn, request: Request,
     else:
         row.config, row.updated_at = document, utcnow()
     session.commit()
-    return pull_out(request, session, row)
+    return pull_out(request, session, experiment_id, row)
 
 
 @router.get("", response_model=PullOut, responses=problem_responses(401, 403, 404))
 def get_pull(experiment_id: str, request: Request, session: Session = Depends(get_session),
              _: Principal = Depends(require_read)) -> PullOut:
-    """The pull config and the latest runs with their reports and errors."""
+    """The pull config and the latest runs with their reports and errors (404 when the
+    experiment has neither)."""
     get_experiment(session, experiment_id)
     row = session.get(PullSchedule, experiment_id)
-    if row is None:
-        raise ProblemError(404, f"Experiment {experiment_id!r} has no pull config.")
-    return pull_out(request, session, row)
+    out = pull_out(request, session, experiment_id, row)
+    if row is None and not out.runs:
+        raise ProblemError(404, f"Experiment {experiment_id!r} has no pull config or runs.")
+    return out
+
+
+@router.post("/runs", status_code=201, response_model=PullRunOut,
+             responses=problem_responses(401, 403, 404, 422))
+def post_run(experiment_id: str, body: PullRunIn, session: Session = Depends(get_session),
+             _: Principal = Depends(require_write)) -> PullRunOut:
+    """Record a pull that ran elsewhere (``inrush pull --upload`` sends its report after the
+    cube), so its crossed units and empty days show here and on the status page. A run for
+    the same ``as_of`` is replaced."""
+    get_experiment(session, experiment_id)
+    run = session.scalar(select(PullRun).where(PullRun.experiment_id == experiment_id,
+                                               PullRun.as_of == body.as_of))
+    now = utcnow()
+    if run is None:
+        run = PullRun(experiment_id=experiment_id, as_of=body.as_of)
+        session.add(run)
+    run.state, run.started_at, run.finished_at = "ok", now, now
+    run.written, run.report, run.error = body.written, body.report, None
+    session.commit()
+    return PullRunOut(as_of=run.as_of, state=run.state, started_at=run.started_at,
+                      finished_at=run.finished_at, written=run.written, report=run.report,
+                      error=None)
 
 
 @router.delete("", status_code=204, responses=problem_responses(401, 403, 404))
@@ -79,7 +103,9 @@ def recent_runs(session: Session, experiment_id: str, limit: int = RECENT_RUNS
                        error=r.error) for r in runs]
 
 
-def pull_out(request: Request, session: Session, row: PullSchedule) -> PullOut:
-    return PullOut(experiment=row.experiment_id, config=row.config,
-                   runs_at=request.app.state.settings.pull_at, updated_at=row.updated_at,
-                   runs=recent_runs(session, row.experiment_id))
+def pull_out(request: Request, session: Session, experiment_id: str,
+             row: PullSchedule | None) -> PullOut:
+    return PullOut(experiment=experiment_id, config=row.config if row else None,
+                   runs_at=request.app.state.settings.pull_at,
+                   updated_at=row.updated_at if row else None,
+                   runs=recent_runs(session, experiment_id))

@@ -30,10 +30,21 @@ class PullRunOut(BaseModel):
                                           "column")
 
 
+class PullRunIn(BaseModel):
+    """A pull run elsewhere (``inrush pull --upload``) records what it saw."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    as_of: dt.date
+    written: int | None = Field(None, ge=0)
+    report: dict[str, Any] = Field(description="the report `inrush pull --json` prints")
+
+
 class PullOut(BaseModel):
     experiment: str
-    config: dict[str, Any]
+    config: dict[str, Any] | None = Field(
+        description="the daily pull's config; null when pulls run elsewhere only report here")
     runs_at: str | None = Field(description="UTC time of day of the daily run "
                                             "(INRUSH_PULL_AT); null: scheduled runs are off")
-    updated_at: dt.datetime
+    updated_at: dt.datetime | None = Field(description="when the config was last set")
     runs: list[PullRunOut] = Field(description="the latest runs, newest first (at most 30)")

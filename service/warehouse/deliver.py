@@ -46,7 +46,8 @@ def write_csv(cube: Cube, path: Path | None) -> str:
 
 
 def upload(cube: Cube, *, url: str, token: str | None, experiment: str,
-           attempts: int = 4, timeout: float = 60.0) -> Delivered:
+           report: dict[str, Any] | None = None, attempts: int = 4,
+           timeout: float = 60.0) -> Delivered:
     """PUT the whole cube as one CSV upload to the service at ``url``."""
     import httpx
 
@@ -54,12 +55,17 @@ def upload(cube: Cube, *, url: str, token: str | None, experiment: str,
     transport = httpx.HTTPTransport(retries=2)  # connection failures, before any byte is sent
     with httpx.Client(base_url=url.rstrip("/"), headers=headers, timeout=timeout,
                       transport=transport) as client:
-        return upload_with(client, cube, experiment=experiment, attempts=attempts)
+        return upload_with(client, cube, experiment=experiment, report=report,
+                           attempts=attempts)
 
 
-def upload_with(client: Any, cube: Cube, *, experiment: str, attempts: int = 4) -> Delivered:
+def upload_with(client: Any, cube: Cube, *, experiment: str,
+                report: dict[str, Any] | None = None, attempts: int = 4) -> Delivered:
     """The upload through an ``httpx.Client`` (base URL and credentials set). The PUT is an
-    upsert, so re-sending after a failed attempt is safe: failures are retried with backoff."""
+    upsert, so re-sending after a failed attempt is safe: failures are retried with backoff.
+    With ``report`` (:meth:`PullResult.report`), the run is then recorded on the experiment's
+    pull resource, where the status page shows its crossed units; a failure to record it is
+    returned in ``detail["report_error"]``, the cube being written already."""
     found = _send(client, "GET", f"/v1/experiments/{experiment}", attempts)
     arms = found.json()["arms"]
     check_arms(cube, arms, experiment)
@@ -68,6 +74,13 @@ def upload_with(client: Any, cube: Cube, *, experiment: str, attempts: int = 4) 
                    content=body.encode("utf-8"),
                    headers={"Content-Type": "text/csv; charset=utf-8"})
     document = answer.json()
+    if report is not None:
+        try:
+            _send(client, "POST", f"/v1/experiments/{experiment}/pull/runs", attempts,
+                  json={"as_of": report["as_of"], "written": document.get("written"),
+                        "report": report})
+        except UploadError as error:
+            document = {**document, "report_error": str(error)}
     return Delivered(int(document.get("written", 0)),
                      (document.get("diagnosis") or {}).get("status"), document)
 

@@ -37,7 +37,9 @@ def _stored(client: TestClient) -> list[dict[str, object]]:
 
 def test_upload_writes_the_whole_cube(client: TestClient, pulled: PullResult) -> None:
     assert client.post("/v1/experiments", json=EXPERIMENT).status_code == 201
-    done = upload_with(client, pulled.cube, experiment=EXPERIMENT["id"])
+    done = upload_with(client, pulled.cube, experiment=EXPERIMENT["id"],
+                       report=pulled.report())
+    assert "report_error" not in done.detail
     # Zero rows complete every (date, source) for each declared arm.
     assert done.written >= len(pulled.cube.rows)
     assert done.status in ("healthy", "watch", "alert")
@@ -47,6 +49,12 @@ def test_upload_writes_the_whole_cube(client: TestClient, pulled: PullResult) ->
         want[["date", "arm", "source", "entered"]])
     assert (got["spend_3d.sum_sq"].astype(float).tolist()
             == want["spend_3d.sum_sq"].astype(float).tolist())
+    # The report travels with it: crossed units on the pull resource and the status page.
+    [run] = client.get(f"/v1/experiments/{EXPERIMENT['id']}/pull").json()["runs"]
+    assert run["report"]["crossed_units"] == pulled.cube.crossed_units > 0
+    assert run["written"] == done.written and run["as_of"] == "2026-03-10"
+    page = client.get(f"/experiments/{EXPERIMENT['id']}").text
+    assert f"{pulled.cube.crossed_units} units" in page
 
 
 def test_undeclared_arm_writes_nothing(client: TestClient, pulled: PullResult,
