@@ -24,7 +24,8 @@ router = APIRouter(prefix="/v1/experiments/{experiment_id}/pull", tags=["pull"])
 RECENT_RUNS = 30
 
 
-@router.put("", response_model=PullOut, responses=problem_responses(401, 403, 404, 422))
+@router.put("", response_model=PullOut,
+            responses=problem_responses(400, 401, 403, 404, 413, 422))
 def put_pull(experiment_id: str, body: PullConfigIn, request: Request,
              session: Session = Depends(get_session),
              _: Principal = Depends(require_admin)) -> Response | PullOut:
@@ -60,7 +61,7 @@ def get_pull(experiment_id: str, request: Request, session: Session = Depends(ge
 
 
 @router.post("/runs", status_code=201, response_model=PullRunOut,
-             responses=problem_responses(401, 403, 404, 422))
+             responses=problem_responses(400, 401, 403, 404, 413, 422))
 def post_run(experiment_id: str, body: PullRunIn, session: Session = Depends(get_session),
              _: Principal = Depends(require_write)) -> PullRunOut:
     """Record a pull that ran elsewhere (``inrush pull --upload`` sends its report after the
