@@ -38,8 +38,8 @@ class ChangeDetection:
     """Daily log mixture e-values, the running anytime-valid p-value and the likeliest start.
 
     ``log_e[t]``: log W on day ``t``; ``p_value[t]``: ``min(1, 1 / max_{u <= t} W_u)``;
-    ``start``: day index of the start that carries most of the evidence on the day W peaked
-    (``None`` without evidence), ``peak``: that day.
+    ``start``: day index of the latest start whose evidence on the day W peaked is within one
+    nat of the most (``None`` without evidence), ``peak``: that day.
     """
 
     log_e: np.ndarray
@@ -110,5 +110,9 @@ def detect_share_change(counts: np.ndarray, planned: np.ndarray,
     if log_e.max() <= 0:
         return ChangeDetection(log_e, p_value, None, None)
     peak = int(np.argmax(log_e))
-    start = int(np.argmax(log_bf[peak, :peak + 1]))
+    # The latest start within one nat of the best: on-plan days before a change (or in an
+    # earlier allocation period) leave the Bayes factor almost unchanged, so near-ties are
+    # resolved towards the change itself.
+    evidence = log_bf[peak, :peak + 1]
+    start = int(np.flatnonzero(evidence >= evidence.max() - 1.0)[-1])
     return ChangeDetection(log_e, p_value, start, peak)

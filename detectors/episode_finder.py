@@ -454,9 +454,11 @@ def _context(engagement: Mapping[str, Mapping[str, Sequence[EngagementChangepoin
 
 
 def _weights(weights: Mapping[str, float] | None, arms: Sequence[str]) -> str:
+    """``cards 0.55, control 0.45``: by arm name, so that the text does not depend on the
+    order in which the arms were declared."""
     if not weights:
         return ""
-    return "/".join(f"{weights[a]:.2f}" for a in arms)
+    return ", ".join(f"{a} {weights[a]:.2f}" for a in sorted(arms))
 
 
 def _span(start: dt.date, end: dt.date) -> str:
