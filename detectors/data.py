@@ -8,8 +8,9 @@ once from the rows of the data contract. Building it validates every row and rai
 from __future__ import annotations
 
 import datetime as dt
+import difflib
 import re
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -20,6 +21,17 @@ from .errors import InputError, Problem
 UNATTRIBUTED = "unattributed"
 STAT_FIELDS = ("n", "sum", "sum_sq")
 METRIC_NAME = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,63}$")
+# Metrics one experiment may carry: each adds three columns to every read of its rows and
+# three arguments to the statements that store them, and databases cap both (SQLite's result
+# sets at 2,000 columns, PostgreSQL's functions at 100 arguments).
+MAX_METRICS = 64
+# Most units one experiment (and so one row) may hold: far beyond any real experiment, and
+# far below 2^53, so every count and total stays exact in float64 and the log-gamma terms of
+# the anytime-valid test keep their precision.
+MAX_UNITS = 10**12
+# Largest magnitude of a metric statistic: every total and square the detectors form from
+# them stays finite.
+MAX_STAT_MAGNITUDE = 1e100
 # Relative slack for sum_sq >= sum^2/n: exports round floating sums.
 _SUMSQ_RTOL = 1e-9
 
@@ -166,6 +178,9 @@ def records_to_frame(rows: Iterable[Mapping[str, object]]) -> pd.DataFrame:
     if problems:
         raise InputError(problems)
     names = list(dict.fromkeys(name for metrics in nested for name in metrics))  # type: ignore[union-attr]
+    if len(names) > MAX_METRICS:  # before a column is built for each
+        raise InputError([Problem("metrics", f"{len(names)} metrics; at most {MAX_METRICS} "
+                                  "are accepted per experiment")])
     columns: dict[str, list[object]] = {
         key: [row.get(key) for row in rows] for key in ("date", "arm", "source", "entered")}
     for name in names:
@@ -203,6 +218,9 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
     if problems:
         raise InputError(problems)
     names = metric_columns(frame.columns)
+    if len(names) > MAX_METRICS:
+        raise InputError([Problem("metrics", f"{len(names)} metrics; at most {MAX_METRICS} "
+                                  "are accepted per experiment")])
     for name in names:
         if not METRIC_NAME.match(name):
             problems.append(Problem(f"{name}", "metric names are letters, digits and _"))
@@ -216,11 +234,28 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
         for row in np.flatnonzero(mask):
             problems.append(Problem(column, message, int(row)))
 
+    def flag_values(mask: np.ndarray, column: str, describe: Callable[[str], str],
+                    numbers: np.ndarray | None = None) -> None:
+        """One message per distinct offending cell, quoting it (``describe(cell text)``);
+        a cell that reads as a number (``numbers``) is quoted as that number, so that the
+        fast reader's numbers and the strict reader's text give the same message."""
+        rows = np.flatnonzero(mask)
+        if not rows.size:
+            return
+        cells = pd.Series([_cell_text(value, None if numbers is None else numbers[row])
+                           for row, value in zip(rows, frame[column].iloc[rows], strict=True)],
+                          dtype=object)
+        messages = {text: describe(text) for text in cells.unique()}
+        problems.extend(Problem(column, messages[text], int(row))
+                        for row, text in zip(rows, cells, strict=True))
+
     raw_dates = frame["date"]
     as_text = raw_dates.astype("string").str.strip()
-    well_written = as_text.str.fullmatch(r"\d{4}-\d{2}-\d{2}").fillna(False).astype(bool)
+    # ASCII digits only: \\d would also take other scripts' digits (full-width ２０２６).
+    well_written = as_text.str.fullmatch(r"[0-9]{4}-[0-9]{2}-[0-9]{2}").fillna(False) \
+        .astype(bool)
     dates = pd.to_datetime(as_text.where(well_written), format="%Y-%m-%d", errors="coerce")
-    flag(dates.isna().to_numpy(), "date", "must be a calendar date written YYYY-MM-DD")
+    flag_values(dates.isna().to_numpy(), "date", _date_message)
     day = dates.to_numpy().astype("datetime64[D]")
     if start is not None:
         flag(~np.isnat(day) & (day < np.datetime64(start, "D")), "date",
@@ -230,8 +265,8 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
              f"is after the last accepted date {end.isoformat()}")
 
     arm = frame["arm"].astype("string")
-    flag((~arm.isin(list(arms)) | arm.isna()).to_numpy(), "arm",
-         f"is not one of the experiment's arms {list(arms)}")
+    flag_values((~arm.isin(list(arms)) | arm.isna()).to_numpy(), "arm",
+                lambda text: _arm_message(text, arms))
 
     if "source" in frame.columns:
         source = frame["source"].astype("string").str.strip().fillna("")
@@ -242,8 +277,16 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
 
     entered = _numeric(frame["entered"])
     bad_entered = ~np.isfinite(entered) | (entered < 0) | (entered != np.floor(entered))
-    flag(bad_entered, "entered", "must be a whole number >= 0")
-    flag(np.isfinite(entered) & (entered > 2**53), "entered", "is implausibly large")
+    flag_values(bad_entered, "entered", lambda text: _count_message(text, "entered"), entered)
+    # Checked on float64, where a count past 2^53 may be rounded: it is refused all the same,
+    # never stored rounded.
+    flag(np.isfinite(entered) & (entered > MAX_UNITS), "entered",
+         f"is larger than {MAX_UNITS:,} (10^12), the most units an experiment holds")
+
+    total = float(np.sum(entered, where=~bad_entered & (entered <= MAX_UNITS)))
+    if total > MAX_UNITS:
+        problems.append(Problem("entered", f"the rows enter {total:,.0f} units together; an "
+                                f"experiment holds at most {MAX_UNITS:,} (10^12)"))
 
     clean = pd.DataFrame({"date": day, "arm": arm, "source": source,
                           "entered": np.where(bad_entered, 0, entered)})
@@ -251,12 +294,25 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
         stats = np.column_stack([_numeric(frame[f"{name}.{s}"]) for s in STAT_FIELDS])
         absent = np.isnan(stats).all(axis=1) & frame[[f"{name}.{s}" for s in STAT_FIELDS]] \
             .isna().all(axis=1).to_numpy()
+        unreadable = np.zeros(len(frame), dtype=bool)
+        for stat, column in zip(STAT_FIELDS, stats.T, strict=True):
+            cells = frame[f"{name}.{stat}"]
+            text = np.flatnonzero(np.isnan(column) & ~cells.isna().to_numpy())
+            mask = np.zeros(len(frame), dtype=bool)  # text, not a number ("nan" is empty)
+            mask[text] = [_cell_text(v, None) != "" for v in cells.iloc[text]]
+            flag_values(mask, f"{name}.{stat}", _number_message)
+            unreadable |= mask
+        partial = ~absent & ~np.isfinite(stats).all(axis=1) & ~unreadable
+        flag(partial, name, _partial_message(name, stats, partial))
         stats[absent] = 0.0
         n, total, total_sq = stats.T
-        partial = ~absent & ~np.isfinite(stats).all(axis=1)
-        flag(partial, name, "needs finite n, sum and sum_sq together")
-        ok = ~partial
-        flag(ok & ((n < 0) | (n != np.floor(n))), f"{name}.n", "must be a whole number >= 0")
+        partial |= unreadable
+        with np.errstate(invalid="ignore"):
+            huge = ~partial & (np.abs(stats) > MAX_STAT_MAGNITUDE).any(axis=1)
+        flag(huge, name, f"n, sum and sum_sq must lie within +-{MAX_STAT_MAGNITUDE:g}")
+        ok = ~partial & ~huge
+        flag_values(ok & ((n < 0) | (n != np.floor(n))), f"{name}.n",
+                    lambda text: _count_message(text, "n"), n)
         flag(ok & ~bad_entered & (n > entered), f"{name}.n",
              "is larger than entered: a cohort cannot have more measured units than units")
         flag(ok & (n == 0) & ((total != 0) | (total_sq != 0)), name,
@@ -282,6 +338,77 @@ def validate_frame(frame: pd.DataFrame, arms: Sequence[str], *, start: dt.date |
     clean["arm"] = clean["arm"].astype(str)
     clean["source"] = clean["source"].astype(str)
     return clean, names
+
+
+_THOUSANDS = re.compile(r"[+-]?\d{1,3}([,.' \u00a0\u202f]\d{3})+")
+_DECIMAL_COMMA = re.compile(r"[+-]?\d+,\d+")
+
+
+def _cell_text(value: object, number: float | None) -> str:
+    """A cell as written, or as the number it reads as (shortest form); empty and NaN cells
+    are ``""`` (the fast reader cannot tell them apart)."""
+    if number is not None and not np.isnan(number):
+        if np.isfinite(number) and float(number).is_integer() and abs(number) < 2**53:
+            return str(int(number))
+        return repr(float(number))
+    if value is None or value is pd.NA or isinstance(value, float | np.floating):
+        return ""
+    text = str(value)
+    return "" if text.strip().lower() in ("nan", "+nan", "-nan") else text
+
+
+def _number_hint(text: str) -> str:
+    """Why a cell is not a number, when it looks like one written for a spreadsheet."""
+    stripped = text.strip()
+    if _THOUSANDS.fullmatch(stripped):
+        return f": drop the thousands separator ({re.sub(r'[^0-9+-]', '', stripped)})"
+    if _DECIMAL_COMMA.fullmatch(stripped):
+        return f": use a decimal point ({stripped.replace(',', '.')})"
+    return ""
+
+
+def _count_message(text: str, what: str) -> str:
+    if not text:
+        return f"{what} is empty: a whole number >= 0 is needed"
+    return f"{text!r} is not a whole number >= 0{_number_hint(text)}"
+
+
+def _date_message(text: str) -> str:
+    if not text:
+        return "the date is empty: write it YYYY-MM-DD"
+    hint = ""
+    for layout in ("%d/%m/%Y", "%m/%d/%Y", "%d.%m.%Y", "%Y/%m/%d", "%Y%m%d"):
+        try:
+            parsed = dt.datetime.strptime(text.strip(), layout).date()
+        except ValueError:
+            continue
+        hint = f" (for {parsed.isoformat()}, write it so)"
+        break
+    return f"{text!r} is not a date written YYYY-MM-DD{hint}"
+
+
+def _arm_message(text: str, arms: Sequence[str]) -> str:
+    listed = ", ".join(arms)
+    if not text:
+        return f"the arm is empty: it must be one of {listed}"
+    folded = {arm.casefold().replace("-", "_"): arm for arm in arms}
+    close = folded.get(text.strip().casefold().replace("-", "_"))
+    if close is None:
+        matches = difflib.get_close_matches(text, list(arms), n=1, cutoff=0.6)
+        close = matches[0] if matches else None
+    hint = f": did you mean {close!r}?" if close is not None else ""
+    return f"{text!r} is not one of the arms {listed}{hint}"
+
+
+def _partial_message(name: str, stats: np.ndarray, partial: np.ndarray) -> str:
+    empty = [f"{name}.{stat}" for stat, column in zip(STAT_FIELDS, stats.T, strict=True)
+             if np.isnan(column[partial]).any()]
+    return ("needs finite n, sum and sum_sq together"
+            + (f" ({', '.join(empty)} empty on some rows)" if empty else ""))
+
+
+def _number_message(text: str) -> str:
+    return f"{text!r} is not a number{_number_hint(text)}"
 
 
 def _numeric(series: pd.Series) -> np.ndarray:

@@ -270,11 +270,15 @@ def classify(counts: np.ndarray, planned: np.ndarray, first: int, last: int,
     if baseline.size == 0:
         return PERSISTENT, int(np.argmax(relative))
     implied = counts / planned  # each arm's estimate of the day's total
-    jump = np.log(np.maximum(implied[span].mean(axis=0), 1e-9)
-                  / np.maximum(implied[baseline].mean(axis=0), 1e-9))
     totals = counts.sum(axis=1)
+    # Traffic that grows (or shrinks) moves every level alike: the trend of the baseline days'
+    # log totals, carried from their mean day to the span's, is taken out of every jump.
+    trend = _trend(baseline, np.log(np.maximum(totals[baseline], 1.0))) \
+        * (span.mean() - baseline.mean())
+    jump = np.log(np.maximum(implied[span].mean(axis=0), 1e-9)
+                  / np.maximum(implied[baseline].mean(axis=0), 1e-9)) - trend
     total_jump = abs(float(np.log(max(totals[span].mean(), 1e-9)
-                                  / max(totals[baseline].mean(), 1e-9))))
+                                  / max(totals[baseline].mean(), 1e-9))) - trend)
     n_arms = counts.shape[1]
     # An inflow into (or shortfall from) arm k leaves every other arm's level alone.
     untouched = np.array([np.abs(np.delete(jump, k)).mean() for k in range(n_arms)])
@@ -284,6 +288,18 @@ def classify(counts: np.ndarray, planned: np.ndarray, first: int, last: int,
     if step_plausible and total_jump * (0.5 if near_allocation_change else 1.0) < untouched[arm]:
         return ALLOCATION_STEP, int(np.argmax(relative))
     return (INFLOW if excess[arm] > 0 else SHORTFALL), arm
+
+
+def _trend(days: np.ndarray, log_totals: np.ndarray) -> float:
+    """Daily slope of the log totals, fitted with one level per weekday so that the weekly
+    cycle does not pass for growth; 0 with fewer than two weeks of baseline (too little to
+    tell a trend from the cycle)."""
+    weekday = days % 7
+    if days.size < 14 or np.bincount(weekday, minlength=7).min() < 2:
+        return 0.0
+    design = np.column_stack([days.astype(float), np.eye(7)[weekday]])
+    coefficients = np.linalg.lstsq(design, log_totals, rcond=None)[0]
+    return float(coefficients[0])
 
 
 def _baseline_days(span: np.ndarray, in_any_run: np.ndarray, n_days: int) -> np.ndarray:
@@ -338,8 +354,10 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
     first, last = run.first, run.last
     start, end = dates[first].item(), dates[last].item()
     near_change = any(abs((c - start).days) <= 3 for c in allocation_changes)
+    # From the first day (a day or two of noise at the start aside) and over most of the data.
     persistent = run.whole_period or (
-        first <= first_active and (last - first + 1) >= PERSISTENT_COVER * (n_days - first_active))
+        first <= first_active + 2
+        and (last - first_active + 1) >= PERSISTENT_COVER * (n_days - first_active))
     if persistent:
         # Steady from the first day: the episode is the whole period so far.
         first, last = first_active, n_days - 1

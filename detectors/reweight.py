@@ -43,6 +43,7 @@ Example (Larkspur Trails demo scenario: a push campaign reached only ``cards``):
 from __future__ import annotations
 
 import datetime as dt
+import difflib
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -51,6 +52,7 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
+from .bounds import Bounds
 from .data import ObservationTable
 from .errors import InputError, Problem, UndefinedEstimateError
 
@@ -104,17 +106,27 @@ class Decomposition:
 
 @dataclass(frozen=True, slots=True)
 class Comparison:
-    """One non-reference arm against the reference arm."""
+    """One non-reference arm against the reference arm.
+
+    ``bounds`` and ``relative_bounds``: trimming bounds on the difference and on the relative
+    lift (:mod:`detectors.honest`); ``None`` until they are attached.
+    """
 
     arm: str
     naive: Estimate
     adjusted: Estimate
     decomposition: Decomposition
+    bounds: Bounds | None = None
+    relative_bounds: Bounds | None = None
 
     def to_dict(self) -> dict[str, Any]:
+        empty = {"low": None, "high": None, "ci_low": None, "ci_high": None}
         return {"arm": self.arm, "naive": self.naive.to_dict(),
                 "adjusted": self.adjusted.to_dict(),
-                "decomposition": self.decomposition.to_dict()}
+                "decomposition": self.decomposition.to_dict(),
+                "bounds": self.bounds.to_dict() if self.bounds else empty,
+                "relative_bounds": (self.relative_bounds.to_dict() if self.relative_bounds
+                                    else empty)}
 
 
 @dataclass(frozen=True, slots=True)
@@ -284,8 +296,9 @@ def _check_request(table: ObservationTable, metric: str, target: str,
     problems: list[Problem] = []
     if metric not in table.metrics:
         known = sorted(table.metrics)
-        problems.append(Problem("metric", f"unknown metric {metric!r}; the data has "
-                                f"{known if known else 'no metrics'}"))
+        problems.append(Problem("metric", f"unknown metric {metric!r}"
+                                + _did_you_mean(metric, known)
+                                + f"; the data has {', '.join(known) or 'no metrics'}"))
     if target not in TARGETS:
         problems.append(Problem("target", f"unknown target {target!r}; must be one of "
                                 f"{list(TARGETS)}"))
@@ -303,6 +316,14 @@ def _check_request(table: ObservationTable, metric: str, target: str,
     if problems:
         raise InputError(problems)
     return grouping
+
+
+def _did_you_mean(name: str, known: Sequence[str]) -> str:
+    """`` (did you mean 'x'?)`` for the known name closest to ``name``, if one is close."""
+    folded = {k.casefold(): k for k in known}
+    close = folded.get(name.casefold()) or next(
+        iter(difflib.get_close_matches(name, list(known), n=1, cutoff=0.6)), None)
+    return f" (did you mean {close!r}?)" if close else ""
 
 
 def _day_mask(table: ObservationTable, dates: Sequence[dt.date], field: str) -> np.ndarray:
@@ -326,8 +347,9 @@ def _exclusions(table: ObservationTable, exclude_sources: Sequence[str],
         exclude_sources = (exclude_sources,)
     unknown = sorted(set(exclude_sources) - set(table.sources))
     if unknown:
-        raise InputError([Problem("exclude_sources", f"unknown source(s) {unknown}; the data "
-                                  f"has {list(table.sources)}")])
+        raise InputError([Problem("exclude_sources", "; ".join(
+            f"unknown source {name!r}{_did_you_mean(name, table.sources)}" for name in unknown)
+            + f"; the data has {', '.join(table.sources)}")])
     keep_day = ~_day_mask(table, exclude_dates, "exclude_dates")
     keep_source = ~np.isin(np.array(table.sources, dtype=object),
                            np.array(list(exclude_sources), dtype=object))

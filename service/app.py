@@ -16,6 +16,7 @@ from pydantic import BaseModel
 from starlette.concurrency import run_in_threadpool
 
 from .access_log import AccessLogMiddleware
+from .catch_up import CatchUpThread
 from .cors import add_cors
 from .db.session import Database
 from .http import BodyLimitMiddleware
@@ -25,7 +26,8 @@ from .metrics import install_metrics
 from .notify.settings import NotifySettings
 from .notify.worker import start_worker
 from .pages.router import router as pages_router
-from .problems import PROBLEM_MEDIA_TYPE, install_problem_handlers
+from .problems import PROBLEM_MEDIA_TYPE, UnexpectedErrorMiddleware, install_problem_handlers
+from .request_budget import RequestBudgetMiddleware
 from .revalidation import RevalidationMiddleware
 from .routers import (
     alerts,
@@ -43,6 +45,7 @@ from .routers import (
 )
 from .schemas.common import ProblemDetails
 from .settings import Settings
+from .table_cache import cache_for
 
 logger = logging.getLogger("inrush.service")
 
@@ -85,7 +88,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or Settings()
     database = Database(settings.database_url, busy_timeout_ms=settings.sqlite_busy_timeout_ms,
                         pool_size=settings.database_pool_size,
-                        max_overflow=settings.database_max_overflow)
+                        max_overflow=settings.database_max_overflow,
+                        connect_timeout_s=settings.database_connect_timeout_seconds,
+                        statement_timeout_ms=settings.statement_timeout_ms)
     notify_settings = NotifySettings(public_url=settings.public_url)
 
     @asynccontextmanager
@@ -97,25 +102,38 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             await run_in_threadpool(database.migrate)
         # Webhook deliveries (INRUSH_NOTIFY_WORKER=0 leaves them to another process).
         worker = start_worker(database, notify_settings)
+        catching_up = CatchUpThread(database, settings.catch_up_seconds)
+        catching_up.start()
         _freeze_startup_objects()
         try:
             yield
         finally:
+            await run_in_threadpool(catching_up.stop)
             if worker is not None:
                 await run_in_threadpool(worker.stop)
             if database.async_reads is not None:
                 await database.async_reads.close()
             database.dispose()
 
+    # /docs and /redoc pull their assets from public CDNs: off unless INRUSH_API_DOCS=1.
     app = FastAPI(title="Inrush", version=package_version(), description=DESCRIPTION,
-                  lifespan=lifespan)
+                  lifespan=lifespan, docs_url="/docs" if settings.api_docs else None,
+                  redoc_url="/redoc" if settings.api_docs else None)
     app.state.settings = settings
     app.state.database = database
+    cache_for(database.engine, max_bytes=settings.table_cache_mb * 1024 * 1024)
     install_problem_handlers(app)
+    # Innermost: an unexpected error becomes a 500 that every layer above sees and logs, and
+    # the connection stays usable.
+    app.add_middleware(UnexpectedErrorMiddleware)
     app.add_middleware(ConditionalGetMiddleware)
     app.add_middleware(StrictJSONMiddleware)  # inside the size limit: reads bodies it allows
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes,
                        public_url=settings.public_url)
+    # Each request's time budget, and whether its client is still there (service.db.session
+    # stops its statements otherwise); outside the body limit, whose refusal is raised while
+    # the application reads the body, and inside the polls' fast path, which needs neither.
+    app.add_middleware(RequestBudgetMiddleware, seconds=settings.request_timeout_seconds)
     app.add_middleware(RevalidationMiddleware)  # 304s for polls, before routing
     install_metrics(app)  # outside the others: times and counts every answer
     add_cors(app)  # preflights and CORS headers on every answer, errors included

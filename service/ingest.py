@@ -18,17 +18,23 @@ from msgspec import UNSET
 from pydantic import TypeAdapter, ValidationError
 from sqlalchemy.orm import Session
 
-from detectors.data import STAT_FIELDS, metric_columns, records_to_frame, validate_frame
+from detectors.data import (
+    MAX_METRICS,
+    MAX_UNITS,
+    STAT_FIELDS,
+    ObservationTable,
+    records_to_frame,
+    validate_frame,
+)
 from detectors.errors import InputError, Problem
 
-from .csvio import read_observations_csv
+from .csvio import read_csv_rows
 from .db.models import Experiment, utcnow
 from .db.observation_store import ObservationColumns, StagedUpload, upsert_observations
 from .gc_pause import paused_garbage_collection
 from .json_guard import JSONBodyError, find_bad_string, format_path, strict_loads
 from .schemas.observations import ObservationIn, PlainBatch, rows_plainly_conform
 
-BASE_COLUMNS = ("date", "arm", "source", "entered")
 _ROWS_ADAPTER: TypeAdapter[list[ObservationIn]] = TypeAdapter(list[ObservationIn])
 
 
@@ -51,6 +57,7 @@ class ParsedBody:
 
     frame: pd.DataFrame
     problems: list[Problem]
+    lines: np.ndarray | None = None  # CSV: the file line of each row (header = line 1)
 
 
 def parse_json_body(body: bytes, max_rows: int) -> ParsedBody:
@@ -144,7 +151,10 @@ def _plain_rows(body: bytes, max_rows: int) -> pd.DataFrame | None:
         "date": [row.date for row in rows], "arm": [row.arm for row in rows],
         "source": [None if row.source is UNSET else row.source for row in rows],
         "entered": [row.entered for row in rows]}
-    for name in dict.fromkeys(name for cells in metrics for name in cells):
+    names = list(dict.fromkeys(name for cells in metrics for name in cells))
+    if len(names) > MAX_METRICS:
+        return None  # the strict path names the limit
+    for name in names:
         stats = [cells.get(name) for cells in metrics]
         columns[f"{name}.n"] = [None if s is None else s.n for s in stats]
         columns[f"{name}.sum"] = [None if s is None else s.sum for s in stats]
@@ -153,20 +163,14 @@ def _plain_rows(body: bytes, max_rows: int) -> pd.DataFrame | None:
 
 
 def parse_csv_body(body: bytes, max_rows: int) -> ParsedBody:
-    """The CSV rows as a frame (text, or numbers parsed for a plain file); the header may only
-    name known columns."""
-    frame = read_observations_csv(body)
-    if len(frame) > max_rows:
-        raise TooManyRowsError(len(frame), max_rows)
-    known = set(BASE_COLUMNS)
-    names = metric_columns(frame.columns)
-    known.update(f"{name}.{stat}" for name in names for stat in STAT_FIELDS)
-    unknown = [c for c in frame.columns if c not in known]
-    if unknown:
-        raise InputError([Problem("header", f"unknown column {c!r}: columns are date, arm, "
-                                  "source, entered and NAME.n, NAME.sum, NAME.sum_sq per "
-                                  "metric") for c in unknown])
-    return ParsedBody(frame, [])
+    """The CSV rows as a frame (text, or numbers parsed for a plain file) with each row's file
+    line; the header may only name known columns."""
+    rows = read_csv_rows(body)
+    if len(rows.frame) > max_rows:
+        raise TooManyRowsError(len(rows.frame), max_rows)
+    if rows.unused:
+        raise InputError(list(rows.unused))
+    return ParsedBody(rows.frame, [], rows.lines)
 
 
 def validate_rows(parsed: ParsedBody, experiment: Experiment, *, today: dt.date,
@@ -204,6 +208,30 @@ def upsert_rows(session: Session, experiment: Experiment, rows: ObservationColum
     experiment's write lock (``service.db.locks``).
     """
     return upsert_observations(session, experiment.id, rows, utcnow())
+
+
+def check_experiment_limits(rows: ObservationColumns) -> None:
+    """Raise InputError when an experiment's rows (stored and uploaded together) exceed what
+    it may hold: :data:`MAX_METRICS` metrics and :data:`MAX_UNITS` units in all."""
+    _check_limits(len(rows.metrics), float(np.sum(rows.entered, dtype=np.float64)))
+
+
+def check_table_limits(table: ObservationTable) -> None:
+    """:func:`check_experiment_limits` on the experiment's table (kept in memory)."""
+    _check_limits(len(table.metrics), float(np.sum(table.entered, dtype=np.float64)))
+
+
+def _check_limits(metrics: int, total: float) -> None:
+    # Totals in float64: int64 could wrap.
+    problems: list[Problem] = []
+    if metrics > MAX_METRICS:
+        problems.append(Problem("metrics", f"the experiment would carry {metrics} "
+                                f"metrics; at most {MAX_METRICS} are accepted per experiment"))
+    if total > MAX_UNITS:
+        problems.append(Problem("entered", f"the experiment would hold {total:,.0f} units; at "
+                                f"most {MAX_UNITS:,} (10^12) are accepted in all"))
+    if problems:
+        raise InputError(problems)
 
 
 def _columns(raw: pd.DataFrame, clean: pd.DataFrame, names: Sequence[str]

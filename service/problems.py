@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import logging
 import re
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 from typing import Any
 
 from fastapi import FastAPI, Request
@@ -18,8 +18,11 @@ from fastapi.responses import JSONResponse
 from sqlalchemy.exc import DBAPIError, DisconnectionError, InterfaceError, OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeoutError
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from detectors.errors import InputError, Problem, UndefinedEstimateError
+
+from .request_budget import RequestAbandonedError
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 MAX_LISTED_ERRORS = 1000
@@ -31,8 +34,8 @@ PROBLEM_TYPES: dict[str, tuple[str, str]] = {
     "invalid-input": (
         "Invalid input",
         "The request is well-formed but some values cannot be accepted. `errors` lists each "
-        "offending row (0-based position in the request), field and reason; nothing was "
-        "written."),
+        "offending row (0-based position in the request; for CSV also the file `line` it "
+        "starts on, the header being line 1), field and reason; nothing was written."),
     "malformed-body": (
         "Malformed request body",
         "The body could not be parsed (invalid JSON or CSV syntax). Nothing was written."),
@@ -114,30 +117,38 @@ def problem_response(request: Request, status: int, detail: str, *, slug: str | 
                         media_type=PROBLEM_MEDIA_TYPE)
 
 
-def problems_as_errors(problems: Iterable[Problem], *, csv_lines: bool = False
-                       ) -> list[dict[str, Any]]:
-    """``{row, field, message}`` items; CSV bodies also give the file line (header = line 1)."""
+def problems_as_errors(problems: Iterable[Problem], *, csv_lines: bool = False,
+                       lines: Sequence[int] | None = None) -> list[dict[str, Any]]:
+    """``{row, field, message}`` items; CSV bodies also give the file ``line`` of the row
+    (header = line 1): from ``lines`` (the reader's, per row) when given, else row + 2."""
     items: list[dict[str, Any]] = []
     for problem in problems:
         item = problem.as_dict()
         if csv_lines and problem.row is not None:
-            item["line"] = problem.row + 2
+            item["line"] = (int(lines[problem.row]) if lines is not None
+                            and problem.row < len(lines) else problem.row + 2)
         items.append(item)
     return items
 
 
 def input_error_response(request: Request, error: InputError, *, csv_lines: bool = False,
-                         detail: str | None = None) -> JSONResponse:
-    errors = problems_as_errors(error.problems, csv_lines=csv_lines)
+                         detail: str | None = None, lines: Sequence[int] | None = None
+                         ) -> JSONResponse:
+    errors = problems_as_errors(error.problems, csv_lines=csv_lines, lines=lines)
     if isinstance(error, UndefinedEstimateError):
         return problem_response(
             request, 422, detail or str(error.problems[0].message), slug="undefined-estimate",
             errors=errors, cohort=error.cohort, arm=error.arm)
+    return problem_response(request, 422, detail or invalid_input_detail(errors),
+                            errors=errors)
+
+
+def invalid_input_detail(errors: Sequence[Mapping[str, Any]]) -> str:
+    """The ``detail`` of an invalid-input problem: how many problems, in how many rows."""
     rows = {e["row"] for e in errors if e["row"] is not None}
     summary = (f"{len(errors)} problem(s) in {len(rows)} row(s)" if rows
                else f"{len(errors)} problem(s)")
-    return problem_response(request, 422, detail or f"The input was rejected: {summary}; "
-                            "nothing was written.", errors=errors)
+    return f"The input was rejected: {summary}; nothing was written."
 
 
 def _base_url(request: Request) -> str:
@@ -216,14 +227,37 @@ def _input_handler(request: Request, exc: Exception) -> JSONResponse:
     return input_error_response(request, exc)
 
 
+# PostgreSQL SQLSTATEs after which the same request may well succeed: connection exception
+# (08), insufficient resources (53: too many connections, disk full), operator intervention
+# (57: a statement timeout, a server shutting down or starting), and serialisation failures,
+# deadlocks and lock timeouts. Anything else (a limit exceeded, a bad statement) fails again.
+_TRANSIENT_SQLSTATE_CLASSES = ("08", "53", "57")
+_TRANSIENT_SQLSTATES = frozenset({"40001", "40P01", "55P03"})
+# SQLite primary result codes of the same kind: locked past the busy timeout, interrupted (the
+# statement timeout), the file unreadable, unopenable or full.
+_TRANSIENT_SQLITE_CODES = frozenset({5, 6, 9, 10, 13, 14, 15})
+
+
 def database_unavailable(exc: BaseException) -> bool:
-    """Whether ``exc`` says the database cannot be used right now (retrying may succeed):
-    unreachable, refusing connections, locked past the busy timeout, a dropped connection,
-    or no pooled connection free in time."""
-    if isinstance(exc, OperationalError | InterfaceError | DisconnectionError
-                  | PoolTimeoutError):
+    """Whether ``exc`` says the database cannot be used right now, so that retrying later may
+    succeed (answered 503 with ``Retry-After``): unreachable, refusing connections, locked or
+    busy past a timeout, a dropped connection, no pooled connection free in time. An error
+    the same request would meet again (too many columns, a limit, a bug) is not."""
+    if isinstance(exc, DisconnectionError | PoolTimeoutError | InterfaceError):
         return True
-    return isinstance(exc, DBAPIError) and bool(exc.connection_invalidated)
+    if not isinstance(exc, DBAPIError):
+        return False
+    if exc.connection_invalidated:
+        return True
+    cause = exc.orig
+    sqlstate = getattr(cause, "sqlstate", None)  # psycopg
+    if isinstance(sqlstate, str):
+        return sqlstate[:2] in _TRANSIENT_SQLSTATE_CLASSES or sqlstate in _TRANSIENT_SQLSTATES
+    code = getattr(cause, "sqlite_errorcode", None)  # sqlite3
+    if isinstance(code, int):
+        return code & 0xFF in _TRANSIENT_SQLITE_CODES
+    # No code: the driver's own failure to reach the server (psycopg's connection errors).
+    return isinstance(exc, OperationalError)
 
 
 def _database_handler(request: Request, exc: Exception) -> JSONResponse:
@@ -238,6 +272,13 @@ def _database_handler(request: Request, exc: Exception) -> JSONResponse:
                             "written. Retry shortly.", headers={"Retry-After": RETRY_AFTER})
 
 
+def _abandoned_handler(request: Request, exc: Exception) -> JSONResponse:
+    # The client may be gone (then nobody reads this), or the request ran past its budget.
+    logger.warning("request stopped on %s %s: %s", request.method, request.url.path, exc)
+    return problem_response(request, 503, f"The request was stopped: {exc}; nothing was "
+                            "written. Retry shortly.", headers={"Retry-After": RETRY_AFTER})
+
+
 def _unexpected_handler(request: Request, exc: Exception) -> JSONResponse:
     logger.exception("unhandled error on %s %s", request.method, request.url.path,
                      exc_info=exc)
@@ -245,11 +286,46 @@ def _unexpected_handler(request: Request, exc: Exception) -> JSONResponse:
                             "written. The error has been logged.")
 
 
+class UnexpectedErrorMiddleware:
+    """Answers an exception that no handler took with the 500 problem document, instead of
+    letting it reach the server: Starlette's outermost layer re-raises it after answering, and
+    uvicorn then drops the connection, so the client's next request on that keep-alive
+    connection met a reset. When a response had started already, only closing the connection
+    can end it, and the exception goes on to the server."""
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        started = False
+
+        async def tracking_send(message: Message) -> None:
+            nonlocal started
+            started = started or message["type"] == "http.response.start"
+            await send(message)
+
+        try:
+            await self.app(scope, receive, tracking_send)
+        except Exception as exc:
+            if started:
+                raise
+            request = Request(scope)
+            response = (_abandoned_handler(request, exc)
+                        if isinstance(exc, RequestAbandonedError)
+                        else _database_handler(request, exc) if database_unavailable(exc)
+                        else _unexpected_handler(request, exc))
+            await response(scope, receive, send)
+
+
 def install_problem_handlers(app: FastAPI) -> None:
     app.add_exception_handler(RequestValidationError, _validation_handler)
     app.add_exception_handler(StarletteHTTPException, _http_handler)
     app.add_exception_handler(ProblemError, _problem_handler)
     app.add_exception_handler(InputError, _input_handler)
+    app.add_exception_handler(RequestAbandonedError, _abandoned_handler)
     for unavailable in (DBAPIError, DisconnectionError, PoolTimeoutError):
         app.add_exception_handler(unavailable, _database_handler)
     app.add_exception_handler(Exception, _unexpected_handler)

@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
-from pydantic import Field, SecretStr
+from pydantic import Field, SecretStr, ValidationError, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 MIB = 1024 * 1024
+MIN_ADMIN_TOKEN_CHARS = 24  # 24 random URL-safe characters are 144 bits
 
 
 class Settings(BaseSettings):
@@ -17,8 +18,9 @@ class Settings(BaseSettings):
         "sqlite:///./inrush.db",
         description="SQLAlchemy URL: sqlite:///PATH or postgresql+psycopg://USER@HOST/DB")
     admin_token: SecretStr | None = Field(
-        None, description="bootstrap token accepted with admin scope (mint others with "
-                          "`inrush token create`)")
+        None, description=f"bootstrap token accepted with admin scope, at least "
+                          f"{MIN_ADMIN_TOKEN_CHARS} characters (mint others with `inrush token "
+                          "create`); empty means unset")
     max_body_bytes: int = Field(10 * MIB, gt=0, description="largest request body accepted")
     max_rows: int = Field(100_000, gt=0, description="most observation rows in one request")
     public_url: str | None = Field(
@@ -41,6 +43,57 @@ class Settings(BaseSettings):
         4, ge=0, description="extra connections a worker process may open under load "
                              "(background work; closed again when returned)")
 
+    database_connect_timeout_seconds: int = Field(
+        5, ge=2, le=300, description="how long opening a database connection may take (a "
+                                     "server that accepts and does not answer fails then)")
+    statement_timeout_ms: int = Field(
+        30_000, ge=0, description="longest a database statement may run before it is "
+                                  "cancelled and the request answers 503 (0: no limit); "
+                                  "migrations are exempt")
+    request_timeout_seconds: float = Field(
+        60.0, gt=0, le=3600,
+        description="time budget of a request's database work: past it (or once the client "
+                    "has gone) no statement starts, SQLite's running one is interrupted, and "
+                    "the request answers 503 having written nothing")
+    health_timeout_seconds: float = Field(
+        2.0, gt=0, le=60, description="how long /healthz waits for the database before it "
+                                      "answers 503")
+    api_docs: bool = Field(
+        False, description="serve the interactive API pages /docs and /redoc, which load "
+                           "their scripts, styles and fonts from public CDNs (the OpenAPI "
+                           "document at /openapi.json is always served)")
+
+    catch_up_seconds: float = Field(
+        60.0, ge=0, description="how often stale diagnoses (rows committed by a process that "
+                                "stopped before diagnosing them) are caught up; 0: at startup "
+                                "only")
+    table_cache_mb: int = Field(
+        512, ge=0, description="memory per worker process for observation tables kept between "
+                               "requests (0 disables the cache)")
+
+    @field_validator("admin_token", mode="before")
+    @classmethod
+    def _strong_admin_token(cls, value: object) -> object:
+        text = value.get_secret_value() if isinstance(value, SecretStr) else value
+        if text is None or text == "":
+            return None
+        if isinstance(text, str) and len(text) < MIN_ADMIN_TOKEN_CHARS:
+            # settings_problems prints this without the value.
+            raise ValueError(f"must be at least {MIN_ADMIN_TOKEN_CHARS} "
+                             f"characters (it has {len(text)}); make one with: python -c "
+                             "'import secrets; print(secrets.token_urlsafe(32))'")
+        return value
+
     def base_url(self, fallback: str) -> str:
         """The public base URL without a trailing slash (``fallback`` when unset)."""
         return (self.public_url or fallback).rstrip("/")
+
+
+def settings_problems(error: ValidationError) -> str:
+    """One line per invalid setting, named by its variable, without the value (which may be
+    a secret)."""
+    lines = []
+    for item in error.errors(include_input=False, include_url=False):
+        name = "INRUSH_" + "_".join(str(part) for part in item["loc"]).upper()
+        lines.append(f"  {name}: {item['msg'].removeprefix('Value error, ')}")
+    return "\n".join(lines)

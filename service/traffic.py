@@ -9,17 +9,19 @@ from __future__ import annotations
 
 import datetime as dt
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from sqlalchemy import func, select
-from sqlalchemy.orm import Session
 
 from detectors import AllocationSchedule, DiagnosisConfig, ObservationTable
 from detectors.sensitivity import sensitivity
 
-from .db.models import Experiment, Observation
-from .http import json_safe
+from .jsonsafe import json_safe
+
+if TYPE_CHECKING:  # the offline CLI uses this module without a database
+    from sqlalchemy.orm import Session
+
+    from .db.models import Experiment
 
 DEFAULT_SENSITIVITY_DAYS = 2
 
@@ -53,6 +55,10 @@ class ArmTraffic:
 
 def stored_arm_traffic(session: Session, experiment: Experiment) -> ArmTraffic | None:
     """Daily arm totals of the stored rows, summed in the database (``None`` without units)."""
+    from sqlalchemy import func, select
+
+    from .db.models import Observation
+
     rows = session.execute(
         select(Observation.date, Observation.arm, func.sum(Observation.entered))
         .where(Observation.experiment_id == experiment.id)

@@ -38,7 +38,17 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
-    return int(args.handler(args) or EXIT_OK)
+    from pydantic import ValidationError
+
+    try:
+        return int(args.handler(args) or EXIT_OK)
+    except ValidationError as error:  # INRUSH_* settings; the values are not repeated
+        if error.title not in ("Settings", "NotifySettings"):
+            raise
+        from ..settings import settings_problems
+
+        print(f"inrush: invalid settings:\n{settings_problems(error)}", file=sys.stderr)
+        return EXIT_FAILURE
 
 
 if __name__ == "__main__":

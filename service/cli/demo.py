@@ -12,14 +12,13 @@ import subprocess
 import sys
 import time
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import httpx
-import pandas as pd
-
-from ..demo import scenario
 from . import EXIT_FAILURE, EXIT_OK
-from .report import format_diagnosis, format_reweighting
+from .report import format_diagnosis, format_reweighting, labelled, paragraph
+
+if TYPE_CHECKING:  # httpx, pandas and the scenario load when the demo runs, not for --help
+    import httpx
 
 
 def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
@@ -44,6 +43,7 @@ def run_demo(args: argparse.Namespace) -> int:
 
 
 def _offline() -> int:
+    from ..demo import scenario
     from . import main
 
     csv = str(scenario.CSV_PATH)
@@ -70,6 +70,8 @@ def _port(wanted: int) -> int:
 
 
 def _online(args: argparse.Namespace) -> int:
+    import httpx
+
     port = _port(args.port)
     base = f"http://127.0.0.1:{port}"
     for suffix in ("", "-wal", "-shm"):
@@ -87,9 +89,13 @@ def _online(args: argparse.Namespace) -> int:
             print("inrush demo: the server did not start", file=sys.stderr)
             return EXIT_FAILURE
         _upload(client)
-        _show(client, base, token)
+        _show(client)
         if args.no_serve:
+            print("\n" + "\n".join(paragraph(
+                "The demo server has stopped (--no-serve). Run `inrush demo` without "
+                "--no-serve to keep it running and browse the status page.", indent="")))
             return EXIT_OK
+        _poll_these(base, token)
         print("\nServing until Ctrl-C.")
         server.wait()
         return EXIT_OK
@@ -106,6 +112,8 @@ def _online(args: argparse.Namespace) -> int:
 
 
 def _wait_healthy(client: httpx.Client, server: subprocess.Popen[bytes]) -> bool:
+    import httpx
+
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline:
         if server.poll() is not None:
@@ -118,6 +126,8 @@ def _wait_healthy(client: httpx.Client, server: subprocess.Popen[bytes]) -> bool
 
 
 def _check(response: httpx.Response) -> dict[str, Any]:
+    import httpx
+
     if response.status_code >= 400:
         raise httpx.HTTPStatusError(f"{response.request.method} {response.request.url} -> "
                                     f"{response.status_code}: {response.text}",
@@ -126,42 +136,76 @@ def _check(response: httpx.Response) -> dict[str, Any]:
 
 
 def _upload(client: httpx.Client) -> None:
+    import pandas as pd
+
+    from ..demo import scenario
+
     _check(client.post("/v1/experiments", json={
         "id": scenario.EXPERIMENT_ID, "title": scenario.TITLE,
         "start_date": scenario.START.isoformat(), "arms": list(scenario.ARMS),
         "allocation": [{"from": scenario.START.isoformat(), "weights": [0.5, 0.5]}],
     }))
     frame = pd.read_csv(scenario.CSV_PATH, dtype=str, keep_default_na=False)
-    print(f"Uploading {frame['date'].nunique()} days of {scenario.EXPERIMENT_ID} "
-          "one day at a time, as a nightly export would:")
-    last_status = None
-    for date, day in frame.groupby("date", sort=True):
+    days = frame.groupby("date", sort=True)
+    print(f"Uploading {days.ngroups} days of {scenario.EXPERIMENT_ID} one day at a time, as "
+          "a nightly export would:")
+    progress = sys.stdout.isatty()
+    statuses: list[tuple[str, str]] = []  # (date, status after that upload)
+    for number, (date, day) in enumerate(days, start=1):
         buffer = io.StringIO()
         day.to_csv(buffer, index=False)
         answer = _check(client.put(f"/v1/experiments/{scenario.EXPERIMENT_ID}/observations",
                                    content=buffer.getvalue(),
                                    headers={"Content-Type": "text/csv"}))
-        status = answer.get("diagnosis", {}).get("status")
-        if status != last_status:
-            print(f"  {date}: {answer.get('written')} rows written, status now {status}")
-            last_status = status
-    print()
+        statuses.append((str(date), str(answer.get("diagnosis", {}).get("status"))))
+        if progress:
+            print(f"\r  upload {number:>2}/{days.ngroups}  {date}  "
+                  f"{answer.get('written')} rows  status {statuses[-1][1]:<8}", end="",
+                  flush=True)
+    if progress:
+        print("\r" + " " * 60 + "\r", end="")
+    print("\n".join(paragraph(f"{len(statuses)} uploads, {len(frame):,} rows; status "
+                             + ", ".join(_status_runs(statuses)) + ".")) + "\n")
 
 
-def _show(client: httpx.Client, base: str, token: str) -> None:
+def _status_runs(statuses: list[tuple[str, str]]) -> list[str]:
+    """``healthy after 2026-10-26 to 2026-11-08``-style runs of equal status."""
+    runs: list[list[str]] = []
+    for date, status in statuses:
+        if runs and runs[-1][0] == status:
+            runs[-1][2] = date
+        else:
+            runs.append([status, date, date])
+    return [f"{status} after the upload of {first}" if first == last
+            else f"{status} after the uploads of {first} to {last}"
+            for status, first, last in runs]
+
+
+def _show(client: httpx.Client) -> None:
+    """The sections ``inrush demo --offline`` prints (diagnosis with sensitivity, then the
+    re-weighting), read from the API, with the alert history between them."""
+    from ..demo import scenario
+
     experiment = scenario.EXPERIMENT_ID
     diagnosis = _check(client.get(f"/v1/experiments/{experiment}/diagnosis"))
+    diagnosis["sensitivity"] = _check(client.get(f"/v1/experiments/{experiment}/sensitivity"))
     print(format_diagnosis(diagnosis))
     alerts = _check(client.get("/v1/alerts", params={"experiment": experiment}))
     items = alerts.get("items", [])
     open_items = [a for a in items if a["status"] == "open"]
-    print(f"\nAlert history: {len(items)} alerts, {len(open_items)} open")
+    print(f"Alert history: {len(items)} alerts, {len(open_items)} open")
     for alert in items[:12]:
-        print(f"  {alert['status']:<12} [{alert['kind']}] {alert['title']}")
+        print("\n".join(labelled(alert["status"], alert["title"])))
     reweighting = _check(client.post(f"/v1/experiments/{experiment}/reweight", json={
         "metric": "routes_saved", "target": "reference_arm", "by": ["source", "window"]}))
     print()
-    print(format_reweighting(reweighting))
+    print(format_reweighting(reweighting), end="")
+
+
+def _poll_these(base: str, token: str) -> None:
+    from ..demo import scenario
+
+    experiment = scenario.EXPERIMENT_ID
     print("\nPoll these (Authorization: Bearer <token>):")
     for path in (f"/v1/experiments/{experiment}/diagnosis",
                  f"/v1/experiments/{experiment}/series", "/v1/alerts",

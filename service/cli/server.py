@@ -47,7 +47,7 @@ def run_serve(args: argparse.Namespace) -> int:
     from sqlalchemy.exc import SQLAlchemyError
 
     from ..db.session import Database
-    from ..settings import Settings
+    from ..settings import Settings, settings_problems
 
     if args.workers < 1:
         print("inrush serve: --workers must be at least 1", file=sys.stderr)
@@ -55,13 +55,14 @@ def run_serve(args: argparse.Namespace) -> int:
     try:
         settings = Settings()
     except ValidationError as error:
-        print(f"inrush serve: invalid settings:\n{error}", file=sys.stderr)
+        print(f"inrush serve: invalid settings:\n{settings_problems(error)}", file=sys.stderr)
         return EXIT_FAILURE
     # Migrate once here so that several workers do not race at startup. With
     # INRUSH_MIGRATE_ON_START=0 (replicas; `inrush db upgrade` runs as its own step) only check
     # that the schema is the one this version needs.
     try:
-        database = Database(settings.database_url)
+        database = Database(settings.database_url,
+                            connect_timeout_s=settings.database_connect_timeout_seconds)
     except (SQLAlchemyError, ImportError) as error:
         print(f"inrush serve: cannot use INRUSH_DATABASE_URL: {error}", file=sys.stderr)
         return EXIT_FAILURE

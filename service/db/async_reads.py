@@ -29,11 +29,16 @@ class QuickReadError(RuntimeError):
 class AsyncReads:
     """A small pool of asynchronous PostgreSQL connections for single-row reads."""
 
-    def __init__(self, url: str, size: int) -> None:
+    def __init__(self, url: str, size: int, *, connect_timeout_s: int = 5,
+                 statement_timeout_ms: int = 30_000) -> None:
         # psycopg takes the libpq URL: the SQLAlchemy one without its driver name.
         self.conninfo = make_url(url).set(drivername="postgresql").render_as_string(
             hide_password=False)
         self.size = size
+        self.connection_options: dict[str, Any] = {"autocommit": True,
+                                                   "connect_timeout": connect_timeout_s}
+        if statement_timeout_ms:
+            self.connection_options["options"] = f"-c statement_timeout={statement_timeout_ms}"
         self._pool: Any = None
         self._loop: asyncio.AbstractEventLoop | None = None
         self._opening = asyncio.Lock()
@@ -49,7 +54,7 @@ class AsyncReads:
                     from psycopg_pool import AsyncConnectionPool
 
                     pool = AsyncConnectionPool(self.conninfo, min_size=1, max_size=self.size,
-                                               kwargs={"autocommit": True}, open=False,
+                                               kwargs=self.connection_options, open=False,
                                                timeout=WAIT_FOR_CONNECTION_S)
                     await pool.open(wait=False)
                     self._pool, self._loop = pool, asyncio.get_running_loop()

@@ -85,6 +85,9 @@ class Experiment(Base):
     webhook_secret: Mapped[str | None] = mapped_column(String(256), default=None)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
     updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    # Bumped by every committed write that changes what the diagnosis reads (rows, allocation,
+    # campaigns): a diagnosis computed outside the write lock is stored only if it is current.
+    data_version: Mapped[int] = mapped_column(Integer, default=0, server_default="0")
 
 
 class Observation(Base):
@@ -124,6 +127,8 @@ class DiagnosisSnapshot(Base):
     # merged in (service.incidents); it changes when an incident's lifecycle does. ``None``:
     # the document is served as stored, under ``etag``.
     served_etag: Mapped[str | None] = mapped_column(String(64), default=None)
+    # The experiment's data_version the snapshot was computed from (None before it existed).
+    data_version: Mapped[int | None] = mapped_column(Integer, default=None)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
 
 

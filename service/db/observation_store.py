@@ -144,10 +144,13 @@ def upsert_observations(session: Session, experiment_id: str, rows: ObservationC
             cursor.close()
     else:
         raise RuntimeError(f"upserts are implemented for SQLite and PostgreSQL, not {dialect}")
-    # Before the upsert: the experiment's stored rows, and how many of them it replaces.
+    # Before the upsert: the experiment's stored rows (counted in the primary key's index)
+    # and how many of them it replaces (looked up from the staged side: its size, not the
+    # experiment's, sets the cost of the join).
     before, updated = session.execute(text(
-        f"SELECT count(*), count({_STAGING}.date) FROM observations LEFT JOIN {_STAGING} "
-        f"ON {_SAME_KEY} WHERE observations.experiment_id = :id"), {"id": experiment_id}).one()
+        "SELECT (SELECT count(*) FROM observations WHERE experiment_id = :id), "
+        f"(SELECT count(*) FROM {_STAGING} JOIN observations ON {_SAME_KEY} "
+        "AND observations.experiment_id = :id)"), {"id": experiment_id}).one()
     # "WHERE true" lets SQLite tell the upsert clause from a join constraint.
     session.execute(text(
         "INSERT INTO observations (experiment_id, date, arm, source, entered, metrics, "

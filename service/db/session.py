@@ -8,6 +8,7 @@ are serialised by an advisory lock and the experiment's row lock (``service.db.l
 
 from __future__ import annotations
 
+import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -19,6 +20,7 @@ from sqlalchemy import Engine, create_engine, event, text
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
+from ..request_budget import budget_spent, check_budget
 from .async_reads import AsyncReads
 
 MIGRATIONS_DIR = Path(__file__).resolve().parent.parent / "migrations"
@@ -29,8 +31,21 @@ _BEGIN_OPTION = "inrush_sqlite_begin"
 QUICK_READ_CONNECTIONS = 4
 
 
+# Defaults of INRUSH_DATABASE_CONNECT_TIMEOUT_SECONDS and INRUSH_STATEMENT_TIMEOUT_MS.
+CONNECT_TIMEOUT_S = 5
+STATEMENT_TIMEOUT_MS = 30_000
+# TCP keepalives: a server that vanishes mid-statement (no reset) is noticed in about a minute
+# instead of the operating system's two hours.
+_KEEPALIVES = {"keepalives": 1, "keepalives_idle": 30, "keepalives_interval": 10,
+               "keepalives_count": 3}
+_NO_STATEMENT_TIMEOUT = "inrush_no_statement_timeout"
+_SQLITE_DEADLINE = "inrush_statement_deadline"
+
+
 def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
-                max_overflow: int = 4) -> Engine:
+                max_overflow: int = 4, connect_timeout_s: int = CONNECT_TIMEOUT_S,
+                statement_timeout_ms: int = STATEMENT_TIMEOUT_MS,
+                respect_budgets: bool = True) -> Engine:
     """An engine for ``url``; SQLite connections are configured for concurrent service use.
 
     ``pool_size`` connections are kept open and at most ``max_overflow`` more are opened
@@ -38,11 +53,32 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
     cost more than the request). A server database's pooled connection is tested with a
     round trip before it is handed out, so that one the server closed (a restart, an idle
     timeout) is replaced instead of failing the request.
+
+    Time limits: connecting to a server gives up after ``connect_timeout_s`` (psycopg would
+    wait 130 s for a server that accepts and never answers), and a statement is cancelled
+    after ``statement_timeout_ms`` (PostgreSQL's ``statement_timeout``; on SQLite a progress
+    handler interrupts it, rows still being fetched included); 0 turns that limit off.
+    Migrations run without the statement limit.
+
+    With ``respect_budgets``, a request's statements stop when the request is past its time
+    budget or its client has gone (``service.request_budget``): none starts then, and on
+    SQLite the one running is interrupted.
     """
     parsed = make_url(url)
     if parsed.get_backend_name() != "sqlite":
-        return create_engine(url, pool_pre_ping=True, pool_size=pool_size,
-                             max_overflow=max_overflow, hide_parameters=True)
+        engine = create_engine(url, pool_pre_ping=True, pool_size=pool_size,
+                               max_overflow=max_overflow, hide_parameters=True,
+                               connect_args={"connect_timeout": connect_timeout_s,
+                                             **_KEEPALIVES})
+        if respect_budgets:
+            event.listen(engine, "before_cursor_execute", _check_budget)
+        if statement_timeout_ms and engine.dialect.name == "postgresql":
+            @event.listens_for(engine, "connect")
+            def _limit_statements(dbapi_connection: Any, _record: Any) -> None:
+                with dbapi_connection.cursor() as cursor:
+                    cursor.execute(f"SET statement_timeout = {int(statement_timeout_ms)}")
+                dbapi_connection.commit()
+        return engine
     database = parsed.database or ""
     if database and database != ":memory:" and not database.startswith("file:"):
         Path(database).expanduser().resolve().parent.mkdir(parents=True, exist_ok=True)
@@ -63,6 +99,36 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
         cursor.execute("PRAGMA foreign_keys=ON")
         cursor.execute("PRAGMA synchronous=NORMAL")
         cursor.close()
+        # The deadline of the statement running now (None: none); SQLite calls the handler
+        # every few thousand virtual-machine steps, and a true answer interrupts.
+        deadline: list[float | None] = [None]
+        _record.info[_SQLITE_DEADLINE] = deadline
+
+        def _interrupt() -> bool:
+            return ((deadline[0] is not None and time.monotonic() > deadline[0])
+                    or (respect_budgets and budget_spent()))
+
+        if statement_timeout_ms or respect_budgets:
+            dbapi_connection.set_progress_handler(_interrupt, 20_000)
+
+    if respect_budgets:
+        event.listen(engine, "before_cursor_execute", _check_budget)
+
+    if statement_timeout_ms:
+        limit_s = statement_timeout_ms / 1000
+
+        @event.listens_for(engine, "before_cursor_execute")
+        def _start_clock(connection: Any, *_: Any) -> None:
+            deadline = connection.info.get(_SQLITE_DEADLINE)
+            if deadline is not None:  # kept until the next statement: fetching counts too
+                deadline[0] = (None if connection.get_execution_options().get(
+                    _NO_STATEMENT_TIMEOUT) else time.monotonic() + limit_s)
+
+        @event.listens_for(engine, "checkin")
+        def _stop_clock(_dbapi_connection: Any, record: Any) -> None:
+            deadline = record.info.get(_SQLITE_DEADLINE)
+            if deadline is not None:
+                deadline[0] = None
 
     @event.listens_for(engine, "begin")
     def _begin(connection: Any) -> None:
@@ -74,14 +140,21 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
     return engine
 
 
+def _check_budget(connection: Any, *_: Any) -> None:
+    if not connection.get_execution_options().get(_NO_STATEMENT_TIMEOUT):
+        check_budget()
+
+
 class Database:
     """The engine and session factory of one service instance."""
 
     def __init__(self, url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
-                 max_overflow: int = 4) -> None:
+                 max_overflow: int = 4, connect_timeout_s: int = CONNECT_TIMEOUT_S,
+                 statement_timeout_ms: int = STATEMENT_TIMEOUT_MS) -> None:
         self.url = url
         self.engine = make_engine(url, busy_timeout_ms=busy_timeout_ms, pool_size=pool_size,
-                                  max_overflow=max_overflow)
+                                  max_overflow=max_overflow, connect_timeout_s=connect_timeout_s,
+                                  statement_timeout_ms=statement_timeout_ms)
         self.sessions = sessionmaker(self.engine, expire_on_commit=False)
         # Polls answered before routing (service.revalidation) read through connections of
         # their own. A read that fails leaves the request to the routes, so these may skip
@@ -96,10 +169,16 @@ class Database:
         self.async_reads: AsyncReads | None = None
         database = self.engine.url.database or ""
         if self.engine.dialect.name == "postgresql":
-            self.async_reads = AsyncReads(url, QUICK_READ_CONNECTIONS)
+            self.async_reads = AsyncReads(url, QUICK_READ_CONNECTIONS,
+                                          connect_timeout_s=connect_timeout_s,
+                                          statement_timeout_ms=statement_timeout_ms)
         elif self.engine.dialect.name == "sqlite" and database not in ("", ":memory:") \
                 and not database.startswith("file:"):
-            self.quick_reads = make_engine(url, busy_timeout_ms=0, pool_size=1, max_overflow=0)
+            # Its reads answer polls before routing; a failed one leaves the request to the
+            # routes, which respect the request's budget.
+            self.quick_reads = make_engine(url, busy_timeout_ms=0, pool_size=1, max_overflow=0,
+                                           statement_timeout_ms=statement_timeout_ms,
+                                           respect_budgets=False)
 
     @property
     def dialect(self) -> str:
@@ -107,7 +186,11 @@ class Database:
 
     def migrate(self, revision: str = "head") -> None:
         """Apply the Alembic migrations up to ``revision``."""
-        with self.engine.begin() as connection:
+        # A migration may rewrite a large table: no statement limit.
+        with self.engine.execution_options(**{_NO_STATEMENT_TIMEOUT: True}).begin() \
+                as connection:
+            if self.dialect == "postgresql":
+                connection.exec_driver_sql("SET LOCAL statement_timeout = 0")
             config = alembic_config(self.url)
             config.attributes["connection"] = connection
             command.upgrade(config, revision)

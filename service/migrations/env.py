@@ -37,7 +37,7 @@ def run_migrations_online() -> None:
         _run(connection)
         return
     url = config.get_main_option("sqlalchemy.url") or Settings().database_url
-    engine = make_engine(url)
+    engine = make_engine(url, statement_timeout_ms=0)  # a migration may rewrite big tables
     try:
         with engine.connect() as connection:
             _run(connection)

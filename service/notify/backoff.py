@@ -1,16 +1,18 @@
-"""Retry schedule of webhook deliveries: exponential steps over hours, with full jitter.
+"""Retry schedule of webhook deliveries: exponential steps over hours, with equal jitter.
 
 The nominal wait before attempt ``n`` grows from 30 seconds to 8 hours; the actual wait is
-drawn uniformly between 0 and the nominal wait ("full jitter", Brooker 2015, "Exponential
-Backoff And Jitter", AWS Architecture Blog), so receivers that came back after an outage are
-not hit by every queued message at once. The first attempt is immediate. After the last
-attempt the message is failed. Pure functions: the random source is passed in.
+drawn uniformly between half the nominal wait and all of it ("equal jitter", Brooker 2015,
+"Exponential Backoff And Jitter", AWS Architecture Blog), so receivers that came back after an
+outage are not hit by every queued message at once, and a failing receiver is never retried
+at once (full jitter, from 0, could retry a failed message a moment later). The first attempt
+is immediate. After the last attempt the message is failed. Pure functions: the random source
+is passed in.
 
 Example:
     >>> import random
     >>> nominal_delay(2)
     30.0
-    >>> 0 <= retry_delay(3, random.Random(1)) <= 120
+    >>> 60 <= retry_delay(3, random.Random(1)) <= 120
     True
     >>> retry_delay(MAX_ATTEMPTS + 1, random.Random(1)) is None
     True
@@ -42,7 +44,8 @@ def retry_delay(attempt: int, rng: random.Random,
         raise ValueError("attempt numbers start at 1")
     if attempt > len(schedule):
         return None
-    return rng.uniform(0.0, nominal_delay(attempt, schedule))
+    step = nominal_delay(attempt, schedule)
+    return rng.uniform(step / 2.0, step)
 
 
 def next_attempt_at(now: dt.datetime, attempts_made: int, rng: random.Random,

@@ -3,8 +3,11 @@
 A target is checked when it is registered and again before every delivery, because a name
 can be re-pointed at an internal address after registration (DNS rebinding). The delivery then
 connects to the very address that passed the check (see :func:`pinned_url`), so a second
-lookup cannot swap it. Hosts named in ``INRUSH_WEBHOOK_ALLOW_HOSTS`` skip the address check
-(receivers on the same network, tests). Redirects are never followed.
+lookup cannot swap it. Redirects are never followed.
+
+``INRUSH_WEBHOOK_ALLOW_HOSTS`` exempts receivers on your own network from the address check,
+each entry on some ports only: ``HOST`` on ports 80 and 443 (the http and https defaults),
+``HOST:PORT`` on that port, ``HOST:*`` on any port (``[ADDRESS]:PORT`` for IPv6 literals).
 """
 
 from __future__ import annotations
@@ -41,10 +44,32 @@ def system_resolver(host: str, port: int) -> list[str]:
     return list(dict.fromkeys(str(info[4][0]) for info in infos))
 
 
+_NAT64 = ipaddress.IPv6Network("64:ff9b::/96")  # RFC 6052: the IPv4 address in the low bits
+DEFAULT_ALLOWED_PORTS = (80, 443)
+
+
+def embedded_ipv4(address: ipaddress.IPv6Address) -> ipaddress.IPv4Address | None:
+    """The IPv4 address an IPv6 one carries, and through which a packet may reach it:
+    IPv4-mapped, 6to4 (2002::/16, RFC 3056), Teredo's client (RFC 4380) and NAT64's
+    well-known prefix."""
+    if address.ipv4_mapped is not None:
+        return address.ipv4_mapped
+    if address.sixtofour is not None:
+        return address.sixtofour
+    if address.teredo is not None:
+        return address.teredo[1]
+    if address in _NAT64:
+        return ipaddress.IPv4Address(int(address) & 0xFFFFFFFF)
+    return None
+
+
 def forbidden_reason(address: IPAddress) -> str | None:
     """Why ``address`` is not a public unicast address, or ``None`` when it is."""
-    if isinstance(address, ipaddress.IPv6Address) and address.ipv4_mapped is not None:
-        return forbidden_reason(address.ipv4_mapped)
+    if isinstance(address, ipaddress.IPv6Address):
+        inner = embedded_ipv4(address)
+        if inner is not None:
+            reason = forbidden_reason(inner)
+            return None if reason is None else f"{reason} (embedded {inner})"
     checks = (("unspecified", address.is_unspecified), ("loopback", address.is_loopback),
               ("link-local", address.is_link_local), ("multicast", address.is_multicast),
               ("reserved", address.is_reserved), ("private", address.is_private))
@@ -70,6 +95,8 @@ def parse_target(url: str) -> tuple[SplitResult, str, int]:
     host = (parts.hostname or "").rstrip(".").lower()
     if not host:
         raise UnsafeTargetError("the URL has no host")
+    if port == 0:
+        raise UnsafeTargetError("port 0 is not a port one can connect to")
     if parts.username is not None or parts.password is not None:
         raise UnsafeTargetError("credentials in the URL are not allowed; sign with the secret "
                                 "instead")
@@ -84,7 +111,7 @@ def check_target(url: str, *, allow_hosts: Collection[str] = (),
     public ones is refused: which one a client connects to is not ours to choose).
     """
     _, host, port = parse_target(url)
-    allowed = host in {h.lower() for h in allow_hosts}
+    allowed = host_allowed(host, port, allow_hosts)
     try:
         literal: IPAddress | None = ipaddress.ip_address(host)
     except ValueError:
@@ -104,10 +131,45 @@ def check_target(url: str, *, allow_hosts: Collection[str] = (),
             if reason is not None:
                 raise UnsafeTargetError(
                     f"host {host!r} resolves to {text}, a {reason} address; webhooks go to "
-                    "public addresses only (list the host in INRUSH_WEBHOOK_ALLOW_HOSTS to "
-                    "allow it)")
+                    f"public addresses only (list {host}:{port} in "
+                    "INRUSH_WEBHOOK_ALLOW_HOSTS to allow it)")
     return CheckedTarget(url=url.strip(), host=host, port=port, address=addresses[0],
                          allowed_by_name=allowed)
+
+
+def host_allowed(host: str, port: int, allow_hosts: Collection[str]) -> bool:
+    """Whether an entry of ``allow_hosts`` (``HOST``, ``HOST:PORT``, ``HOST:*``) names this
+    host on this port; a bare ``HOST`` allows ports 80 and 443 only."""
+    for entry in allow_hosts:
+        name, ports = split_allow_entry(entry)
+        if name == host and (ports is None or port in ports):
+            return True
+    return False
+
+
+def split_allow_entry(entry: str) -> tuple[str, tuple[int, ...] | None]:
+    """``(host, ports)`` of an allow-list entry; ``None`` ports: any.
+
+    Example:
+        >>> split_allow_entry("Hooks.Internal:8080"), split_allow_entry("[fd00::5]:*")
+        (('hooks.internal', (8080,)), ('fd00::5', None))
+        >>> split_allow_entry("hooks.internal")
+        ('hooks.internal', (80, 443))
+    """
+    text = entry.strip().lower()
+    if text.startswith("["):
+        name, _, rest = text[1:].partition("]")
+        port = rest.removeprefix(":") if rest.startswith(":") else ""
+    elif text.count(":") == 1:
+        name, _, port = text.partition(":")
+    else:  # a bare name, or a bare IPv6 literal
+        name, port = text, ""
+    name = name.rstrip(".")
+    if port == "*":
+        return name, None
+    if port.isdigit() and 0 < int(port) < 65536:
+        return name, (int(port),)
+    return name, DEFAULT_ALLOWED_PORTS if not port else ()
 
 
 def check_registration(url: str, *, allow_hosts: Collection[str] = (),

@@ -15,9 +15,10 @@ class NotifySettings(BaseSettings):
         None, description="base URL of the service as its clients see it; links in webhook "
                           "payloads are absolute when set, paths otherwise")
     webhook_allow_hosts: str = Field(
-        "", description="comma-separated host names (or literal addresses) that webhooks may "
-                        "target even though they resolve to private, loopback or link-local "
-                        "addresses (for receivers on the same network)")
+        "", description="comma-separated hosts that webhooks may target even though they "
+                        "resolve to private, loopback or link-local addresses (receivers on "
+                        "the same network): HOST allows ports 80 and 443, HOST:PORT that "
+                        "port, HOST:* any port; [ADDRESS] for IPv6 literals")
     notify_worker: bool = Field(
         True, description="run the delivery worker inside the service process (0 to disable, "
                           "e.g. in tests or when a separate process delivers)")
@@ -31,6 +32,6 @@ class NotifySettings(BaseSettings):
 
 
 def parse_hosts(text: str) -> frozenset[str]:
-    """``"a.example, B.example"`` -> ``{"a.example", "b.example"}`` (lower case, no brackets)."""
-    return frozenset(h.strip().strip("[]").lower().rstrip(".") for h in text.split(",")
-                     if h.strip())
+    """``"a.example, B.example:8080"`` -> ``{"a.example", "b.example:8080"}``: the entries,
+    trimmed and in lower case (``service.notify.safety.host_allowed`` reads them)."""
+    return frozenset(h.strip().lower() for h in text.split(",") if h.strip())

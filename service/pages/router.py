@@ -7,7 +7,6 @@ https) and redirects to the same page without the token in the address.
 
 from __future__ import annotations
 
-import datetime as dt
 from typing import Annotated, Any
 from urllib.parse import urlencode
 
@@ -16,10 +15,12 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from detectors import InputError, reweight
+from detectors import InputError, ObservationTable
+from detectors.contamination import cells_from_document
 from detectors.errors import UndefinedEstimateError
+from detectors.honest import default_effect
 
-from ..analysis import latest_snapshot, latest_summaries, load_table
+from ..analysis import latest_snapshot, latest_summaries, load_table, schedule_for
 from ..campaigns import campaign_document, stored_campaigns
 from ..db.models import Alert, Experiment
 from ..db.session import get_session
@@ -27,11 +28,13 @@ from ..http import json_safe
 from ..incidents import served_document
 from ..routers.alerts import alert_out
 from ..routers.common import base_url
-from ..routers.reweight import flagged_dates
 from ..settings import Settings
 from ..tokens import Principal, Scope, authenticate
-from ..traffic import sensitivity_document, stored_arm_traffic, thresholds_of
+from ..traffic import ArmTraffic, sensitivity_document, thresholds_of
+from . import assets
+from .export import series_csv
 from .render import (
+    pick_metric,
     render_experiment_page,
     render_index_page,
     render_not_found,
@@ -43,11 +46,15 @@ COOKIE_PATH = "/experiments"
 UNRESOLVED = ("open", "acknowledged")
 PAGE_HEADERS = {"Cache-Control": "private, no-store", "X-Content-Type-Options": "nosniff",
                 "Referrer-Policy": "no-referrer",
-                "Content-Security-Policy": "default-src 'none'; style-src 'unsafe-inline'; "
-                                           "img-src data:; form-action 'self'; "
-                                           "frame-ancestors 'none'"}
+                # Scripts only from this origin's /static (no inline code: the page's data
+                # sits in a JSON block, which is not executed); styles may be inline.
+                "Content-Security-Policy": "default-src 'none'; script-src 'self'; "
+                                           "style-src 'self' 'unsafe-inline'; "
+                                           "img-src 'self' data: blob:; form-action 'self'; "
+                                           "base-uri 'none'; frame-ancestors 'none'"}
 
 router = APIRouter(tags=["pages"], include_in_schema=False)
+router.include_router(assets.router)
 
 
 def _bearer(request: Request) -> str | None:
@@ -97,6 +104,8 @@ def _ask(request: Request, reason: str) -> HTMLResponse:
 
 
 TokenQuery = Annotated[str | None, Query(description="read token, once; kept in a cookie")]
+MetricQuery = Annotated[str | None, Query(max_length=200,
+                                          description="metric to chart and estimate")]
 
 
 @router.get("/experiments", response_class=HTMLResponse)
@@ -124,7 +133,7 @@ def index_page(request: Request, session: Session = Depends(get_session),
 @router.get("/experiments/{experiment_id}", response_class=HTMLResponse)
 def experiment_page(experiment_id: str, request: Request,
                     session: Session = Depends(get_session),
-                    token: TokenQuery = None) -> Response:
+                    token: TokenQuery = None, metric: MetricQuery = None) -> Response:
     blocked = _gate(request, session, token)
     if blocked is not None:
         return blocked
@@ -140,8 +149,11 @@ def experiment_page(experiment_id: str, request: Request,
                                                  Alert.status.in_(UNRESOLVED))
                              .order_by(Alert.id.desc()))
     alert_rows = [alert_out(request, a).model_dump(mode="json") for a in alerts]
-    effect, problem = _effect(session, experiment, document, series)
-    traffic = stored_arm_traffic(session, experiment)
+    chosen, _ = pick_metric(list((series or {}).get("metrics", [])), metric)
+    table = load_table(session, experiment)  # cached per data version: read once per page
+    effect, problem = _effect(table, experiment, document, chosen)
+    traffic = (ArmTraffic.from_table(table, schedule_for(experiment))
+               if table is not None else None)
     campaigns = [campaign_document(row, experiment, traffic)
                  for row in stored_campaigns(session, experiment_id)]
     alpha, max_window = thresholds_of(document)
@@ -159,24 +171,44 @@ def experiment_page(experiment_id: str, request: Request,
                     "start_date": experiment.start_date.isoformat()},
         diagnosis=document, series=series, alerts=alert_rows, reweight=effect,
         reweight_problem=problem, diagnosis_version=snapshot.version if snapshot else None,
-        links=links, campaigns=campaigns, sensitivity=sensitivity)
+        links=links, campaigns=campaigns, sensitivity=sensitivity, metric=metric,
+        refreshed_at=snapshot.created_at.isoformat() if snapshot else None,
+        csv_href=f"/experiments/{experiment_id}/series.csv",
+        series_tag=snapshot.series_etag if snapshot else None)
     return HTMLResponse(html, headers=PAGE_HEADERS)
 
 
-def _effect(session: Session, experiment: Experiment, document: dict[str, Any] | None,
-            series: dict[str, Any] | None) -> tuple[dict[str, Any] | None, str | None]:
-    """The effect on the first metric, re-weighted by source x flagged window to the
-    reference arm's mix; or why there is none."""
-    metrics = list((series or {}).get("metrics", []))
-    if document is None or not metrics:
+@router.get("/experiments/{experiment_id}/series.csv")
+def series_csv_file(experiment_id: str, request: Request,
+                    session: Session = Depends(get_session)) -> Response:
+    """The daily series of the latest diagnosis as CSV (the status page's download)."""
+    blocked = _gate(request, session, None)
+    if blocked is not None:
+        return blocked
+    if session.get(Experiment, experiment_id) is None:
+        return HTMLResponse(render_not_found(experiment_id), status_code=404,
+                            headers=PAGE_HEADERS)
+    snapshot = latest_snapshot(session, experiment_id)
+    series = snapshot.series if snapshot else None
+    text = series_csv(series or {})
+    return Response(text, media_type="text/csv; charset=utf-8", headers={
+        "Cache-Control": "private, no-store", "X-Content-Type-Options": "nosniff",
+        "Content-Disposition": f'attachment; filename="{experiment_id}-series.csv"'})
+
+
+def _effect(table: ObservationTable | None, experiment: Experiment,
+            document: dict[str, Any] | None, metric: str | None
+            ) -> tuple[dict[str, Any] | None, str | None]:
+    """The effect on ``metric`` as the reweight endpoint answers a call without options (the
+    honest default that leaves the incidents' cells out, with bounds); or why there is none."""
+    if document is None or metric is None:
         return None, "No metric has been uploaded, so there is no effect to estimate."
-    table = load_table(session, experiment)
     if table is None:
         return None, "No observations are stored."
-    flagged: list[dt.date] = flagged_dates(document)
     try:
-        result = reweight(table, metrics[0], target="reference_arm", by=("source", "window"),
-                          flagged_dates=flagged)
+        answer = default_effect(table, metric, cells_from_document(document),
+                                schedule_for(experiment),
+                                incidents=len(document.get("incidents") or ()))
     except (UndefinedEstimateError, InputError) as error:
         return None, f"The re-weighted estimate is undefined: {error}"
-    return json_safe(result.to_dict()), None
+    return json_safe(answer), None

@@ -7,7 +7,7 @@ from sqlalchemy import select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
-from ..analysis import NO_DATA, latest_snapshot, refresh_diagnosis
+from ..analysis import NO_DATA, bump_data_version, latest_snapshot, rediagnose
 from ..auth import require_read, require_write
 from ..campaigns import campaign_document, planned_campaign, stored_campaigns
 from ..db.campaign_models import Campaign
@@ -60,8 +60,11 @@ def register_campaign(experiment_id: str, body: CampaignCreate, request: Request
         session.rollback()
         raise _exists(experiment_id, planned.name) from None
     diagnosis, alerts = None, AlertCounts(opened=0, resolved=0)
-    if latest_snapshot(session, experiment_id) is not None:
-        refresh = refresh_diagnosis(session, experiment, cause=NEW_CAMPAIGN)
+    diagnosed = latest_snapshot(session, experiment_id) is not None
+    bump_data_version(session, experiment)
+    session.commit()
+    if diagnosed:
+        refresh = rediagnose(session, experiment_id, cause=NEW_CAMPAIGN)
         snapshot = refresh.snapshot
         diagnosis = DiagnosisRef(
             status=None if snapshot.status == NO_DATA else snapshot.status,

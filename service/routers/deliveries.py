@@ -22,7 +22,7 @@ from ..schemas.deliveries import (
     DeliveryOut,
     IncidentDeliveryList,
 )
-from ..tokens import Principal
+from ..tokens import Principal, Scope
 from .common import MAX_BIGINT
 
 router = APIRouter(tags=["alerts"])
@@ -31,8 +31,10 @@ router = APIRouter(tags=["alerts"])
 @router.get("/v1/incidents/{incident_id}/deliveries", response_model=IncidentDeliveryList,
             responses=problem_responses(401, 403, 404), tags=["incidents"])
 def list_incident_deliveries(incident_id: int, session: Session = Depends(get_session),
-                             _: Principal = Depends(require_read)) -> IncidentDeliveryList:
-    """Every notification queued for the incident, oldest first, with each delivery attempt."""
+                             principal: Principal = Depends(require_read)
+                             ) -> IncidentDeliveryList:
+    """Every notification queued for the incident, oldest first, with each delivery attempt;
+    what the receiver answered is shown to write and admin tokens only."""
     incident = session.get(Incident, incident_id) if 1 <= incident_id <= MAX_BIGINT else None
     if incident is None:
         raise ProblemError(404, f"There is no incident {incident_id}.")
@@ -42,16 +44,22 @@ def list_incident_deliveries(incident_id: int, session: Session = Depends(get_se
         webhook_configured=bool(experiment is not None and experiment.webhook_url),
         items=_deliveries(session.scalars(
             select(Outbox).where(Outbox.incident_id == incident_id)
-            .options(selectinload(Outbox.delivery_attempts)).order_by(Outbox.id))))
+            .options(selectinload(Outbox.delivery_attempts)).order_by(Outbox.id)),
+            principal.scope >= Scope.write))
 
 
 @router.get("/v1/alerts/{alert_id}/deliveries", response_model=DeliveryList,
             responses=problem_responses(401, 403, 404))
 def list_deliveries(alert_id: int, session: Session = Depends(get_session),
-                    _: Principal = Depends(require_read)) -> DeliveryList:
+                    principal: Principal = Depends(require_read)) -> DeliveryList:
     """Every notification queued for the alert, oldest first, with each delivery attempt.
     Notifications go per incident (`/v1/incidents/{id}/deliveries`); an alert has its own
-    only from before incidents were kept."""
+    only from before incidents were kept.
+
+    What the receiver answered (the start of its reply, a redirect's target) is shown to
+    write and admin tokens only: a receiver may sit on an internal network whose replies a
+    read token should not see."""
+    full = principal.scope >= Scope.write
     alert = session.get(Alert, alert_id) if 1 <= alert_id <= MAX_BIGINT else None
     if alert is None:
         raise ProblemError(404, f"There is no alert {alert_id}.")
@@ -61,15 +69,25 @@ def list_deliveries(alert_id: int, session: Session = Depends(get_session),
         webhook_configured=bool(experiment is not None and experiment.webhook_url),
         items=_deliveries(session.scalars(
             select(Outbox).where(Outbox.alert_id == alert_id)
-            .options(selectinload(Outbox.delivery_attempts)).order_by(Outbox.id))))
+            .options(selectinload(Outbox.delivery_attempts)).order_by(Outbox.id)), full))
 
 
-def _deliveries(rows: Iterable[Outbox]) -> list[DeliveryOut]:
+def _deliveries(rows: Iterable[Outbox], full: bool) -> list[DeliveryOut]:
+    """``full``: with what the receiver answered (write and admin tokens only)."""
     return [DeliveryOut(
         id=row.id, event_id=row.event_id, event_type=row.event_type, status=row.status,
         attempts=row.attempts, next_attempt_at=row.next_attempt_at,
         created_at=row.created_at, delivered_at=row.delivered_at,
         history=[DeliveryAttemptOut(
             attempt=a.attempt, started_at=a.started_at, duration_ms=a.duration_ms,
-            status_code=a.status_code, error=a.error, response_excerpt=a.response_excerpt)
+            status_code=a.status_code,
+            error=a.error if full else _without_receiver_text(a.error, a.status_code),
+            response_excerpt=a.response_excerpt if full else None)
             for a in row.delivery_attempts]) for row in rows]
+
+
+def _without_receiver_text(error: str | None, status: int | None) -> str | None:
+    """The attempt's error for a read token: a redirect's target (the receiver's text) cut."""
+    if error is not None and status is not None and 300 <= status < 400:
+        return f"answered {status}, a redirect; redirects are not followed"
+    return error

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime as dt
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Header, Query
@@ -13,7 +14,7 @@ from ..analysis import latest_snapshot, snapshot_version
 from ..auth import require_read
 from ..db.models import DiagnosisSnapshot
 from ..db.session import get_session
-from ..http import JSON_MEDIA_TYPE, canonical_json, etag_matches
+from ..http import JSON_MEDIA_TYPE, canonical_json, entity_tag, etag_matches
 from ..http_cache import REVALIDATE
 from ..incidents import served_document
 from ..problems import ProblemError
@@ -52,12 +53,39 @@ def get_diagnosis(experiment_id: str, session: Session = Depends(get_session),
             responses={**_CONDITIONAL, **problem_responses(401, 403, 404)})
 def get_series(experiment_id: str, session: Session = Depends(get_session),
                _: Principal = Depends(require_read),
+               first: Annotated[dt.date | None, Query(
+                   alias="from", description="first day (inclusive)")] = None,
+               last: Annotated[dt.date | None, Query(
+                   alias="to", description="last day (inclusive)")] = None,
                if_none_match: Annotated[str | None, Header()] = None) -> Response:
-    """Per day and arm: units, observed and planned share, flags; units per source and day."""
+    """Per day and arm: units, observed and planned share, flags; units per source and day.
+
+    `from` and `to` keep only the days between them (every per-day list is cut alike), so a
+    dashboard of a long, wide experiment can fetch the days it shows."""
     snapshot = _snapshot(session, experiment_id, None)
     if snapshot.series is None:
         raise _no_diagnosis(experiment_id)
-    return _conditional(snapshot.series, snapshot.series_etag, snapshot.version, if_none_match)
+    if first is None and last is None:
+        return _conditional(snapshot.series, snapshot.series_etag, snapshot.version,
+                            if_none_match)
+    ranged = series_between(snapshot.series, first, last)
+    tag = entity_tag([snapshot.series_etag, str(first), str(last)])
+    return _conditional(ranged, tag, snapshot.version, if_none_match)
+
+
+def series_between(series: dict[str, Any], first: dt.date | None, last: dt.date | None
+                   ) -> dict[str, Any]:
+    """The series document restricted to the days from ``first`` to ``last`` (inclusive)."""
+    low = first.isoformat() if first else ""
+    high = last.isoformat() if last else "9999-12-31"
+    dates = list(series.get("dates", []))
+    keep = [i for i, day in enumerate(dates) if low <= day <= high]
+    start, stop = (keep[0], keep[-1] + 1) if keep else (0, 0)  # the dates are contiguous
+    return {**series, "dates": dates[start:stop],
+            "days": [d for d in series.get("days", []) if low <= d["date"] <= high],
+            "sources": [{**source, "entered": {arm: counts[start:stop] for arm, counts
+                                               in source["entered"].items()}}
+                        for source in series.get("sources", [])]}
 
 
 @router.get("/diagnoses", response_model=SnapshotList, responses=problem_responses(401, 403, 404))

@@ -17,7 +17,13 @@ from detectors import AllocationSchedule, InputError
 from detectors.errors import Problem
 
 from ..alerting import NEW_ALLOCATION
-from ..analysis import SnapshotSummary, latest_snapshot, latest_summaries, refresh_diagnosis
+from ..analysis import (
+    SnapshotSummary,
+    bump_data_version,
+    latest_snapshot,
+    latest_summaries,
+    rediagnose,
+)
 from ..auth import require_read, require_write
 from ..db.models import Experiment, utcnow
 from ..db.session import begin_write, get_session
@@ -142,10 +148,13 @@ def change_experiment(experiment_id: str, body: ExperimentPatch, request: Reques
                 experiment.webhook_secret = body.notify.secret
     experiment.updated_at = utcnow()
     opened = resolved = 0
-    if allocation_changed and latest_snapshot(session, experiment.id) is not None:
-        refresh = refresh_diagnosis(session, experiment, cause=NEW_ALLOCATION)
-        opened, resolved = len(refresh.alerts.opened), len(refresh.alerts.resolved)
+    diagnosed = allocation_changed and latest_snapshot(session, experiment.id) is not None
+    if allocation_changed:
+        bump_data_version(session, experiment)
     session.commit()
+    if diagnosed:
+        refresh = rediagnose(session, experiment_id, cause=NEW_ALLOCATION)
+        opened, resolved = len(refresh.alerts.opened), len(refresh.alerts.resolved)
     out = experiment_out(request, session, experiment)
     return ExperimentPatchResult(**out.model_dump(), alerts_opened=opened,
                                  alerts_resolved=resolved)

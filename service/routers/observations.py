@@ -2,22 +2,29 @@
 
 from __future__ import annotations
 
+import base64
+import binascii
 import datetime as dt
-from typing import Annotated
+import json
+from collections.abc import Iterator, Sequence
+from typing import Annotated, Any
 
+import msgspec
 from fastapi import APIRouter, Depends, Header, Query, Request
-from fastapi.responses import JSONResponse, Response
+from fastapi.responses import JSONResponse, Response, StreamingResponse
+from sqlalchemy import Row, Select, Text, cast, select, tuple_
 from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
 from detectors.errors import InputError
 
 from ..alerting import CORRECTED_DATA, LATER_DATA
-from ..analysis import NO_DATA, refresh_diagnosis, stored_rows
+from ..analysis import NO_DATA, record_upload, rediagnose
 from ..auth import require_read, require_write
-from ..csvio import write_observations_csv
+from ..csvio import observations_csv_header, observations_csv_lines, write_observations_csv
 from ..db.models import Observation, utcnow
-from ..db.session import get_session
+from ..db.observation_store import metric_names
+from ..db.session import Database, get_session
 from ..http import CSV_MEDIA_TYPE, JSON_MEDIA_TYPE, media_type, preferred_media_type
 from ..ingest import (
     MalformedBodyError,
@@ -83,9 +90,11 @@ def _write(request: Request, session: Session, experiment_id: str, body: bytes,
            is_csv: bool) -> Response:
     settings: Settings = request.app.state.settings
     experiment = get_experiment(session, experiment_id)
+    lines = None  # CSV: the file line of each row, for the problem document
     try:
         parsed = (parse_csv_body(body, settings.max_rows) if is_csv
                   else parse_json_body(body, settings.max_rows))
+        lines = parsed.lines
         rows = validate_rows(parsed, experiment, today=utcnow().date(),
                              future_days=settings.future_days)
     except MalformedBodyError as error:
@@ -95,13 +104,21 @@ def _write(request: Request, session: Session, experiment_id: str, body: bytes,
         raise ProblemError(413, f"The request has {error.count} rows; at most {error.limit} "
                            "are accepted per request. Split the upload.") from None
     except InputError as error:
-        return input_error_response(request, error, csv_lines=is_csv)
+        reader_lines = getattr(error, "lines", None)  # the CSV reader's own problems
+        return input_error_response(request, error, csv_lines=is_csv,
+                                    lines=lines if reader_lines is None else reader_lines)
 
+    # One short write transaction stores the rows; the diagnosis runs after it, outside the
+    # lock (service.analysis.rediagnose), and the answer reports the stored result.
     experiment = lock_experiment(session, experiment_id)
     staged = upsert_rows(session, experiment, rows)
-    refresh = refresh_diagnosis(session, experiment, staged=staged,
+    try:
+        record_upload(session, experiment, staged)
+    except InputError as error:  # past the experiment's limits: nothing is kept
+        session.rollback()
+        return input_error_response(request, error, csv_lines=is_csv, lines=lines)
+    refresh = rediagnose(session, experiment_id,
                                 cause=CORRECTED_DATA if staged.updated else LATER_DATA)
-    session.commit()
     snapshot = refresh.snapshot
     result = WriteResult(
         written=len(rows), inserted=staged.inserted, updated=staged.updated,
@@ -118,10 +135,17 @@ def _write(request: Request, session: Session, experiment_id: str, body: bytes,
     return JSONResponse(result.model_dump(mode="json"))
 
 
+EXPORT_PART_ROWS = 5_000  # rows per database fetch and per written part of a streamed export
+MAX_PAGE_ROWS = 100_000
+
+
 @router.get("", response_model=ObservationList,
             responses={**problem_responses(401, 403, 404, 406, 422),
                        200: {"content": {"text/csv": {"schema": {"type": "string"}}},
-                             "description": "the stored rows, as JSON or CSV"}})
+                             "description": "the stored rows, as JSON or CSV",
+                             "headers": {"Link": {
+                                 "description": 'rel="next": the next page (with `limit`)',
+                                 "schema": {"type": "string"}}}}})
 def get_observations(experiment_id: str, request: Request,
                      session: Session = Depends(get_session),
                      _: Principal = Depends(require_read),
@@ -129,23 +153,134 @@ def get_observations(experiment_id: str, request: Request,
                          alias="from", description="first date (inclusive)")] = None,
                      last: Annotated[dt.date | None, Query(
                          alias="to", description="last date (inclusive)")] = None,
+                     limit: Annotated[int | None, Query(
+                         ge=1, le=MAX_PAGE_ROWS,
+                         description="rows per page; without it every row is streamed")] = None,
+                     cursor: Annotated[str | None, Query(
+                         description="`next` of the previous page")] = None,
                      accept: Annotated[str | None, Header(include_in_schema=False)] = None
                      ) -> Response:
-    """The stored rows, sorted by date, arm and source (`Accept: text/csv` for CSV)."""
+    """The stored rows, sorted by date, arm and source (`Accept: text/csv` for CSV).
+
+    Without `limit` the whole selection is streamed, read from the database a part at a time
+    (memory does not grow with the experiment). With `limit` one page is answered; its
+    `next` (in the JSON body and a `Link: rel="next"` header, for CSV too) continues after it.
+    """
     get_experiment(session, experiment_id)
     chosen = preferred_media_type(accept, [JSON_MEDIA_TYPE, CSV_MEDIA_TYPE])
     if chosen is None:
         raise ProblemError(406, "This resource is available as application/json or text/csv.")
-    rows = [_row(o) for o in stored_rows(session, experiment_id, first=first, last=last)]
+    after = decode_row_cursor(cursor) if cursor else None
+    headers = {"Vary": "Accept"}
     if chosen == CSV_MEDIA_TYPE:
-        return Response(write_observations_csv(rows), media_type="text/csv; charset=utf-8",
-                        headers={"Content-Disposition":
-                                 f'attachment; filename="{experiment_id}-observations.csv"',
-                                 "Vary": "Accept"})
-    return JSONResponse({"rows": rows}, headers={"Vary": "Accept"})
+        headers["Content-Disposition"] = (f'attachment; filename="{experiment_id}-'
+                                          'observations.csv"')
+    query = _rows_query(experiment_id, first, last, after)
+    if limit is not None:  # one bounded page, read at once
+        found = [_row(r) for r in session.execute(query.limit(limit + 1))]
+        page = found[:limit]
+        next_cursor = encode_row_cursor(page[-1]) if len(found) > limit else None
+        if next_cursor is not None:
+            link = str(request.url.include_query_params(cursor=next_cursor))
+            headers["Link"] = f'<{link}>; rel="next"'
+        if chosen == CSV_MEDIA_TYPE:
+            return Response(write_observations_csv(page), media_type="text/csv; charset=utf-8",
+                            headers=headers)
+        return JSONResponse({"rows": page, "next": next_cursor}, headers=headers)
+    database = request.app.state.database
+    if chosen == CSV_MEDIA_TYPE:
+        names = metric_names(session, experiment_id)
+        session.commit()  # the stream reads in a session of its own
+        return StreamingResponse(_csv_parts(database, query, names),
+                                 media_type="text/csv; charset=utf-8", headers=headers)
+    session.commit()
+    return StreamingResponse(_json_parts(database, query), media_type=JSON_MEDIA_TYPE,
+                             headers=headers)
 
 
-def _row(observation: Observation) -> dict[str, object]:
+def _rows_query(experiment_id: str, first: dt.date | None, last: dt.date | None,
+                after: tuple[dt.date, str, str] | None) -> Select[tuple[Any, ...]]:
+    query = select(Observation.date, Observation.arm, Observation.source, Observation.entered,
+                   Observation.metrics).where(Observation.experiment_id == experiment_id)
+    if first is not None:
+        query = query.where(Observation.date >= first)
+    if last is not None:
+        query = query.where(Observation.date <= last)
+    if after is not None:
+        query = query.where(tuple_(Observation.date, Observation.arm, Observation.source)
+                            > tuple_(*after))
+    return query.order_by(Observation.date, Observation.arm, Observation.source)
+
+
+def _stored_parts(database: Database, query: Select[tuple[Any, ...]]
+                  ) -> Iterator[Sequence[Row[tuple[Any, ...]]]]:
+    """The rows a part at a time from one statement (a consistent view of the table; on
+    PostgreSQL a server-side cursor), in a session that lives as long as the stream. Each
+    row's ``metrics`` is its stored JSON text: the JSON export copies it as it is."""
+    raw = query.with_only_columns(
+        *query.selected_columns[:4], cast(Observation.metrics, Text).label("metrics"),
+        maintain_column_froms=True)
+    with database.sessions() as session:
+        result = session.execute(raw.execution_options(yield_per=EXPORT_PART_ROWS))
+        yield from result.partitions()
+
+
+def _csv_parts(database: Database, query: Select[tuple[Any, ...]], names: list[str]
+               ) -> Iterator[str]:
+    yield observations_csv_header(names)
+    for part in _stored_parts(database, query):
+        yield observations_csv_lines(
+            ({"date": r.date.isoformat(), "arm": r.arm, "source": r.source,
+              "entered": r.entered, "metrics": _METRICS.decode(r.metrics)} for r in part),
+            names)
+
+
+_METRICS = msgspec.json.Decoder(dict[str, dict[str, int | float]])
+
+
+def _json_parts(database: Database, query: Select[tuple[Any, ...]]) -> Iterator[bytes]:
+    """``{"rows": [...], "next": null}``, each row's stored metrics document copied as text;
+    names are encoded once each (a wide experiment repeats few arms and sources)."""
+    names: dict[str, str] = {}
+
+    def name(value: str) -> str:
+        text = names.get(value)
+        if text is None:
+            text = names[value] = json.dumps(value, ensure_ascii=False)
+        return text
+
+    yield b'{"rows":['
+    separator = ""
+    for part in _stored_parts(database, query):
+        text = ",".join(
+            f'{{"date":"{r.date.isoformat()}","arm":{name(r.arm)},"source":{name(r.source)},'
+            f'"entered":{r.entered},"metrics":{r.metrics}}}' for r in part)
+        yield (separator + text).encode()
+        separator = ","
+    yield b'],"next":null}'
+
+
+def encode_row_cursor(row: dict[str, object]) -> str:
+    key = json.dumps([row["date"], row["arm"], row["source"]], ensure_ascii=False)
+    return base64.urlsafe_b64encode(key.encode()).decode().rstrip("=")
+
+
+def decode_row_cursor(cursor: str) -> tuple[dt.date, str, str]:
+    """The key a page ended on; a 422 naming ``cursor`` for anything this service did not
+    issue."""
+    try:
+        key = json.loads(base64.b64decode(cursor + "=" * (-len(cursor) % 4), altchars=b"-_",
+                                          validate=True).decode())
+        day, arm, source = key
+        if not (isinstance(day, str) and isinstance(arm, str) and isinstance(source, str)):
+            raise ValueError("not a row key")
+        return dt.date.fromisoformat(day), arm, source
+    except (binascii.Error, UnicodeDecodeError, ValueError, TypeError):
+        raise ProblemError(422, "cursor is not one this service issued.", errors=[
+            {"row": None, "field": "cursor", "message": "invalid cursor"}]) from None
+
+
+def _row(observation: Row[tuple[Any, ...]]) -> dict[str, object]:
     return {"date": observation.date.isoformat(), "arm": observation.arm,
             "source": observation.source, "entered": observation.entered,
             "metrics": observation.metrics}

@@ -8,13 +8,15 @@ from typing import Annotated, Any
 
 from pydantic import BaseModel, BeforeValidator, ConfigDict, Field, Strict, StringConstraints
 
+from detectors.data import MAX_UNITS
+
 from .observations import AlertCounts, DiagnosisRef
 
 CampaignName = Annotated[str, StringConstraints(min_length=1, max_length=100,
                                                 strip_whitespace=True)]
 SourceName = Annotated[str, StringConstraints(min_length=1, max_length=128,
                                               strip_whitespace=True)]
-_ISO_DAY = re.compile(r"\d{4}-\d{2}-\d{2}")
+_ISO_DAY = re.compile(r"[0-9]{4}-[0-9]{2}-[0-9]{2}")  # ASCII: \d takes other scripts' digits
 
 
 def _iso_day_text(value: Any) -> Any:
@@ -44,8 +46,8 @@ class CampaignCreate(BaseModel):
         min_length=1, max_length=26,
         description="{arm: share of that arm's units the campaign reaches, 0..1}; arms left "
                     "out are not reached")
-    # At most 2**53 units, as for observation counts (and within the BIGINT column).
-    expected_size: Annotated[int, Strict(), Field(ge=1, le=2**53)] | None = Field(
+    # At most as many units as an experiment may hold.
+    expected_size: Annotated[int, Strict(), Field(ge=1, le=MAX_UNITS)] | None = Field(
         None, description="units the campaign is expected to bring over all its days; when "
                           "left out it is estimated from the experiment's recent traffic")
 

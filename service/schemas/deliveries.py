@@ -12,8 +12,11 @@ class DeliveryAttemptOut(BaseModel):
     started_at: dt.datetime
     duration_ms: int | None
     status_code: int | None = Field(description="HTTP status of the answer, null without one")
-    error: str | None = Field(description="why the attempt failed, null when delivered")
-    response_excerpt: str | None = Field(description="start of the receiver's answer")
+    error: str | None = Field(description="why the attempt failed, null when delivered (a "
+                                          "redirect's target for write or admin tokens only)")
+    response_excerpt: str | None = Field(description="start of the receiver's answer (up to "
+                                                     "500 characters); write or admin tokens "
+                                                     "only, null for read tokens")
 
 
 class DeliveryOut(BaseModel):

@@ -9,6 +9,8 @@ import msgspec
 from msgspec import UNSET, UnsetType
 from pydantic import BaseModel, ConfigDict, Field, StrictFloat, StrictStr
 
+from detectors.data import MAX_METRICS
+
 # Any JSON number (not a string or a boolean); the stored value keeps the sender's int/float.
 Number = StrictFloat
 _SOURCE_LIMIT = 128  # characters of an entry source
@@ -32,7 +34,9 @@ class ObservationIn(BaseModel):
     source: Annotated[StrictStr, Field(max_length=128)] | None = Field(
         None, description="entry source; missing means 'unattributed'")
     entered: Number = Field(description="units that entered (whole number >= 0)")
-    metrics: dict[str, MetricStats] | None = None
+    metrics: Annotated[dict[str, MetricStats], Field(max_length=MAX_METRICS)] | None = Field(
+        None, description=f"per metric name its statistics; at most {MAX_METRICS} metrics per "
+                          "experiment")
 
 
 class ObservationBatch(BaseModel):
@@ -58,7 +62,8 @@ class PlainRow(msgspec.Struct, forbid_unknown_fields=True):
     arm: str
     entered: int | float
     source: Annotated[str, msgspec.Meta(max_length=_SOURCE_LIMIT)] | UnsetType | None = UNSET
-    metrics: dict[str, PlainStats] | UnsetType | None = UNSET
+    metrics: Annotated[dict[str, PlainStats], msgspec.Meta(max_length=MAX_METRICS)] \
+        | UnsetType | None = UNSET
 
 
 class PlainBatch(msgspec.Struct, forbid_unknown_fields=True):
@@ -75,6 +80,8 @@ class ObservationOut(BaseModel):
 
 class ObservationList(BaseModel):
     rows: list[ObservationOut]
+    next: str | None = Field(None, description="cursor of the next page (with `limit`); null "
+                                               "on the last page and in a streamed answer")
 
 
 class DiagnosisRef(BaseModel):
@@ -129,7 +136,7 @@ def rows_plainly_conform(rows: list[Any]) -> bool:
             and all(value is None or (type(value) is str and len(value) <= _SOURCE_LIMIT)
                     for value in sources)
             and all(type(value) in _NUMBER for value in entered)
-            and all(value is None or (type(value) is dict and all(
+            and all(value is None or (type(value) is dict and len(value) <= MAX_METRICS and all(
                 type(name) is str and type(stats) is dict and stats.keys() == _STAT_FIELDS
                 and type(stats["n"]) in _NUMBER and type(stats["sum"]) in _NUMBER
                 and type(stats["sum_sq"]) in _NUMBER for name, stats in value.items()))

@@ -3,8 +3,11 @@
 from __future__ import annotations
 
 import datetime as dt
+import io
 from pathlib import Path
 from typing import Any
+
+import pandas as pd
 
 DEMO_CSV = Path(__file__).resolve().parents[2] / "service" / "demo" / "larkspur_route_cards.csv"
 
@@ -20,6 +23,16 @@ EXPERIMENT = {
 
 def demo_csv_text() -> str:
     return DEMO_CSV.read_text(encoding="utf-8")
+
+
+def two_metric_demo_csv() -> str:
+    """The demo export with a second metric, minutes on trail, scaled from routes saved (x12),
+    for pages and reports that switch between metrics."""
+    frame = pd.read_csv(io.StringIO(demo_csv_text()))
+    frame["trail_minutes.n"] = frame["routes_saved.n"]
+    frame["trail_minutes.sum"] = frame["routes_saved.sum"] * 12.0
+    frame["trail_minutes.sum_sq"] = frame["routes_saved.sum_sq"] * 144.0
+    return frame.to_csv(index=False)
 
 
 def assert_problem(response: Any, status: int, slug: str | None = None) -> dict[str, Any]:

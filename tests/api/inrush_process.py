@@ -32,7 +32,7 @@ def inrush_serve(tmp_path: Path, *, workers: int = 1, env: dict[str, str] | None
     ``arguments`` go to ``inrush serve``; with ``clean_log`` the test fails if the server's
     log shows a traceback once it has stopped.
     """
-    port, token = free_port(), token or secrets.token_urlsafe(16)
+    port, token = free_port(), token or secrets.token_urlsafe(32)
     base = f"http://127.0.0.1:{port}"
     environment = {**os.environ,
                    "INRUSH_DATABASE_URL": database_url or f"sqlite:///{tmp_path / 'inrush.db'}",

@@ -35,7 +35,7 @@ def _command() -> list[str]:
 
 @pytest.fixture
 def server(database_url: str, tmp_path: Path) -> Iterator[tuple[str, str]]:
-    port, token = _free_port(), secrets.token_urlsafe(16)
+    port, token = _free_port(), secrets.token_urlsafe(32)
     base = f"http://127.0.0.1:{port}"
     env = {**os.environ, "INRUSH_DATABASE_URL": database_url, "INRUSH_ADMIN_TOKEN": token,
            "INRUSH_PUBLIC_URL": base}

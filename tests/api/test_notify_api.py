@@ -22,7 +22,7 @@ SECRET = "whsec_bGFya3NwdXItdHJhaWxzLWtleQ=="
 
 
 def deliver_all(app: FastAPI) -> int:
-    worker = NotifyWorker(app.state.database, NotifySettings(webhook_allow_hosts="127.0.0.1",
+    worker = NotifyWorker(app.state.database, NotifySettings(webhook_allow_hosts="127.0.0.1:*",
                                                              notify_worker=False))
     try:
         return worker.run_once()
@@ -32,7 +32,8 @@ def deliver_all(app: FastAPI) -> int:
 
 @pytest.mark.parametrize("url", ["http://127.0.0.1:9/hook", "http://localhost/hook",
                                  "http://169.254.169.254/latest/meta-data",
-                                 "https://[::1]/hook", "http://10.20.30.40/hook"])
+                                 "https://[::1]/hook", "http://10.20.30.40/hook",
+                                 "http://[2002:a00:1::1]/hook", "http://93.184.215.14:0/hook"])
 def test_internal_webhooks_are_refused_at_registration(client: Any, url: str,
                                                        counts: Any) -> None:
     before = counts()
@@ -49,7 +50,7 @@ def test_internal_webhooks_are_refused_at_registration(client: Any, url: str,
 
 def test_upload_queues_and_the_worker_delivers(client: Any, app: FastAPI,
                                                monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1")
+    monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1:*")
     with running_receiver(planned=[500]) as receiver:
         response = client.post("/v1/experiments", json={
             **EXPERIMENT, "notify": {"webhook_url": f"{receiver.url}/larkspur/inrush",
@@ -65,7 +66,8 @@ def test_upload_queues_and_the_worker_delivers(client: Any, app: FastAPI,
         assert deliver_all(app) == 1 and len(receiver.requests) == 1
         retried = receiver.requests[0].headers["webhook-id"]
         time.sleep(0.05)
-        # The 500 is retried later per the backoff schedule, not in this pass.
+        # The 500 is retried later per the backoff schedule (15 to 30 s after it), not in
+        # this pass.
         assert deliver_all(app) == 0
     [request] = receiver.requests
     assert signing.verify(SECRET, request.headers, request.body)
@@ -85,7 +87,7 @@ def test_upload_queues_and_the_worker_delivers(client: Any, app: FastAPI,
 
 def test_corrected_data_sends_resolutions(client: Any, app: FastAPI,
                                           monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1")
+    monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1:*")
     with running_receiver() as receiver:
         client.post("/v1/experiments", json={**EXPERIMENT, "notify": {
             "webhook_url": f"{receiver.url}/hook", "secret": SECRET}})
@@ -134,7 +136,7 @@ def test_the_app_runs_the_worker_in_its_lifespan(settings: Any,
 
     monkeypatch.setenv("INRUSH_NOTIFY_WORKER", "1")
     monkeypatch.setenv("INRUSH_NOTIFY_POLL_SECONDS", "0.1")
-    monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1")
+    monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1:*")
     with running_receiver() as receiver:
         with TestClient(create_app(settings)) as client:
             client.headers["Authorization"] = f"Bearer {settings.admin_token.get_secret_value()}"

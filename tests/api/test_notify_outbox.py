@@ -40,7 +40,7 @@ def database(database_url: str) -> Iterator[Database]:
 
 
 def settings(**overrides: Any) -> NotifySettings:
-    values: dict[str, Any] = {"webhook_allow_hosts": "127.0.0.1", "notify_worker": False,
+    values: dict[str, Any] = {"webhook_allow_hosts": "127.0.0.1:*", "notify_worker": False,
                               "webhook_timeout_seconds": 5.0,
                               "public_url": "https://inrush.larkspur.example"}
     return NotifySettings(**(values | overrides))

@@ -278,3 +278,35 @@ def test_too_many_rows_is_413(client: Any, experiment: Any, counts: Any, setting
     body = assert_problem(client.put(URL, json={"rows": rows}), 413)
     assert str(settings.max_rows) in body["detail"]
     assert counts() == before
+
+
+def test_csv_problems_give_the_rows_and_lines_the_command_line_gives(
+        client: Any, experiment: Any, counts: Any, tmp_path: Any,
+        capsys: pytest.CaptureFixture[str]) -> None:
+    from service.cli import main
+
+    # Semicolon separated, a blank line before the last row: its row is 2, its line 5.
+    body = ("date;arm;source;entered\n2026-10-26;control;organic;10\n"
+            "2026-10-26;cards;organic;11\n\n2026-10-27;Cards;organic;1.234\n")
+    before = counts()
+    problem = assert_problem(client.put(URL, content=body.encode(),
+                                        headers={"Content-Type": "text/csv"}), 422)
+    assert counts() == before
+    path = tmp_path / "export.csv"
+    path.write_text(body)
+    assert main(["analyze", str(path), "--arms", "control,cards", "--json"]) == 2
+    offline = json.loads(capsys.readouterr().out)
+    assert offline["errors"] == problem["errors"]
+    assert {(e["row"], e["line"], e["field"]) for e in problem["errors"]} == {
+        (2, 5, "arm"), (2, 5, "entered")}
+    messages = " ".join(e["message"] for e in problem["errors"])
+    assert "did you mean 'cards'?" in messages
+    assert "drop the thousands separator (1234)" in messages
+
+
+def test_csv_columns_that_look_like_metrics_are_refused_with_the_name_to_use(
+        client: Any, experiment: Any) -> None:
+    body = "date,arm,source,entered,saves_sum\n2026-10-26,control,organic,10,4\n"
+    problem = assert_problem(client.put(URL, content=body.encode(),
+                                        headers={"Content-Type": "text/csv"}), 422)
+    assert "rename it saves.sum" in problem["errors"][0]["message"]

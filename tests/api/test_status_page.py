@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import io
 import re
 from typing import Any
 
-from apihelpers import EXPERIMENT, demo_csv_text, upload_csv
+import pandas as pd
+from apihelpers import EXPERIMENT, demo_csv_text, two_metric_demo_csv, upload_csv
 
 
 def login(anonymous: Any, token: str, path: str = "/experiments/route-cards") -> Any:
@@ -61,10 +63,14 @@ def test_page_shows_status_alerts_charts_and_the_effect(client: Any, anonymous: 
     assert "Route cards on the trail list" in html
     assert diagnosis["status"] == "alert" and "\u25a0 Alert" in html
     assert page.headers["cache-control"] == "private, no-store"
-    assert "default-src 'none'" in page.headers["content-security-policy"]
-    # Four server-drawn charts, nothing loaded from elsewhere, no script.
+    csp = page.headers["content-security-policy"]
+    assert "default-src 'none'" in csp and "script-src 'self';" in csp
+    # Four server-drawn charts (three as the fallback without JavaScript); scripts come from
+    # this server's /static only, and nothing from elsewhere.
     assert html.count("<svg") == 4
-    assert "<script" not in html and not re.search(r'src="https?://', html)
+    assert not re.search(r'src="https?://', html) and "<link" in html
+    for tag in re.findall(r"<script\b[^>]*>", html):
+        assert 'type="application/json"' in tag or re.search(r'src="/static/[^"]+\?v=', tag)
     for title in ("Arm shares against the plan", "Entrants per source and arm",
                   "Entrant engagement per arm: routes_saved",
                   "Effect on routes_saved: naive and re-weighted by entry cohort"):
@@ -103,3 +109,40 @@ def test_page_without_data_says_so(client: Any) -> None:
     html = client.get("/experiments/route-cards").text
     assert "No data" in html and "No unresolved alerts." in html
     assert "<svg" not in html
+
+
+def test_metric_query_picks_the_chart_and_the_effect_and_the_files_are_served(
+        client: Any, anonymous: Any, token_for: Any) -> None:
+    client.post("/v1/experiments", json=EXPERIMENT)
+    upload_csv(client, two_metric_demo_csv())
+    expected = client.post("/v1/experiments/route-cards/reweight", json={
+        "metric": "trail_minutes", "target": "reference_arm", "by": ["source", "window"]}).json()
+    series = client.get("/v1/experiments/route-cards/series").json()
+    del client.headers["Authorization"]
+    login(anonymous, token_for("read"))
+    html = anonymous.get("/experiments/route-cards", params={"metric": "trail_minutes"}).text
+    assert '<option value="trail_minutes" selected>' in html
+    assert "Entrant engagement per arm: trail_minutes" in html
+    assert "Effect on trail_minutes: naive, honest estimate and bounds" in html
+    assert f"{expected['comparisons'][0]['adjusted']['difference']:+,.3f}" in html
+    assert "Entrant engagement per arm: routes_saved" not in html
+    unknown = anonymous.get("/experiments/route-cards", params={"metric": "Trail_Minutes"})
+    assert unknown.status_code == 200 and "There is no metric &#39;Trail_Minutes&#39;" in \
+        unknown.text
+    # The scripts the page names are served, cacheable for a year under their hash.
+    for src in re.findall(r'<script src="([^"]+)"', html):
+        script = anonymous.get(src)
+        assert script.status_code == 200
+        assert script.headers["content-type"].startswith("text/javascript")
+        assert "immutable" in script.headers["cache-control"]
+    missing = anonymous.get("/static/..%2Fsettings.py")
+    assert missing.status_code == 404
+    assert missing.headers["content-type"].startswith("application/problem+json")
+    # The series as CSV, behind the same token as the page.
+    csv_file = anonymous.get("/experiments/route-cards/series.csv")
+    assert csv_file.status_code == 200 and csv_file.headers["content-type"].startswith("text/csv")
+    table = pd.read_csv(io.StringIO(csv_file.text))
+    assert len(table) == len(series["days"]) * len(series["arms"])
+    assert list(table.columns[-2:]) == ["mean_routes_saved", "mean_trail_minutes"]
+    anonymous.cookies.clear()
+    assert anonymous.get("/experiments/route-cards/series.csv").status_code == 401

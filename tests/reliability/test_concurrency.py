@@ -41,7 +41,7 @@ THREADS = 8
 ROUNDS = 2
 SHARED_DAYS = 4  # the first days of the demo: every thread writes them
 EXPERIMENT_ID = scenario.EXPERIMENT_ID
-TOKEN = "concurrency-admin-token"
+TOKEN = "concurrency-admin-token-larkspur"
 
 
 @pytest.fixture
@@ -50,7 +50,7 @@ def server(database_url: str, tmp_path: Path) -> Iterator[str]:
     with inrush_serve(tmp_path, workers=2, database_url=database_url, token=TOKEN,
                       arguments=("--log-level", "warning"), clean_log=True, env={
                           "INRUSH_NOTIFY_WORKER": "1", "INRUSH_NOTIFY_POLL_SECONDS": "0.2",
-                          "INRUSH_WEBHOOK_ALLOW_HOSTS": "127.0.0.1"}) as (base, _):
+                          "INRUSH_WEBHOOK_ALLOW_HOSTS": "127.0.0.1:*"}) as (base, _):
         yield base
 
 

@@ -130,13 +130,13 @@ def test_webhook_receiver_outage_ends_with_every_notification_delivered(
     (connection refused), too slow (answers after the sender's timeout) or answers 500; then
     it recovers. Every notification arrives, and each alert's deliveries list the failed
     attempts and the final delivery."""
-    monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1")
+    monkeypatch.setenv("INRUSH_WEBHOOK_ALLOW_HOSTS", "127.0.0.1:*")
     receiver = FaultyReceiver(mode={"down": "ok", "slow": "slow", "error": "error"}[fault],
                               delay=1.0)
     if fault != "down":
         receiver.start()
     app = create_app(Settings(database_url=database_url, admin_token=ADMIN_TOKEN))
-    notify = NotifySettings(webhook_allow_hosts="127.0.0.1", notify_worker=False,
+    notify = NotifySettings(webhook_allow_hosts="127.0.0.1:*", notify_worker=False,
                             notify_poll_seconds=0.05, webhook_timeout_seconds=0.4)
     with TestClient(app, raise_server_exceptions=False) as client:
         client.headers["Authorization"] = f"Bearer {ADMIN_TOKEN}"

@@ -67,3 +67,23 @@ def test_labels_are_escaped_and_empty_data_still_draws_a_titled_chart() -> None:
     assert "<script>" not in svg and "&lt;script&gt;" in svg
     empty = texts(charts.share_chart({"arms": ["control", "cards"], "days": []}))
     assert "Arm shares against the plan" in empty and "No days with data yet." in empty
+
+
+def test_date_axis_names_the_year_once_and_days_plainly() -> None:
+    words = texts(charts.share_chart(demo_documents().series))
+    assert "2026-Oct" not in words and "2026-Nov" not in words
+    assert "2026" in words.split() and "09 Nov" in words
+
+
+def test_entrants_arm_labels_head_their_panels_off_the_data() -> None:
+    figure = charts.entrants_figure(demo_documents().series)
+    axes = figure.axes
+    assert [ax.get_title(loc="right") for ax in axes] == [f"arm {a}" for a in scenario.ARMS]
+    # No text box inside a panel, where it would cover the lines.
+    assert all(not ax.texts for ax in axes)
+
+
+def test_palette_gives_the_browser_the_same_colours_and_distinct_dashes() -> None:
+    looks = charts.palette()
+    assert [look["color"] for look in looks] == [s.color for s in charts.STYLES]
+    assert len({tuple(look["dash"]) for look in looks}) == len(looks)

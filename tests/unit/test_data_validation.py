@@ -112,9 +112,13 @@ def test_partial_metric_stats(column: str) -> None:
     assert _problems(_with(2, column, None)) == [(2, "hikes")]
 
 
-@pytest.mark.parametrize("value", [float("nan"), float("inf"), "lots"])
+@pytest.mark.parametrize("value", [float("nan"), float("inf")])
 def test_non_finite_metric_stats(value: Any) -> None:
     assert _problems(_with(0, "hikes.sum", value)) == [(0, "hikes")]
+
+
+def test_text_in_a_metric_statistic_is_named_in_its_column() -> None:
+    assert _problems(_with(0, "hikes.sum", "lots")) == [(0, "hikes.sum")]
 
 
 def test_metric_with_n_zero_must_have_zero_sums() -> None:

@@ -407,7 +407,10 @@ def test_to_dict_has_the_contract_shape_and_is_strict_json(units: pd.DataFrame) 
     assert set(document) == {"metric", "target", "by", "comparisons", "cohorts", "caveats"}
     assert document["by"] == ["source", "window"] and document["target"] == "reference_arm"
     (entry,) = document["comparisons"]
-    assert set(entry) == {"arm", "naive", "adjusted", "decomposition"}
+    assert set(entry) == {"arm", "naive", "adjusted", "decomposition", "bounds",
+                          "relative_bounds"}
+    # Bounds are attached by detectors.honest; a bare re-weighting carries empty ones.
+    assert entry["bounds"] == {"low": None, "high": None, "ci_low": None, "ci_high": None}
     assert set(entry["naive"]) == set(entry["adjusted"]) == EST_KEYS
     assert set(entry["decomposition"]) == {"composition", "within"}
     cohort = document["cohorts"][0]
