@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: install test demo lint serve openapi bench bench-quick fuzz clean
+.PHONY: install install-spark test demo lint serve openapi bench bench-quick fuzz clean
 
 install: $(STAMP)
 
@@ -14,14 +14,20 @@ $(STAMP): pyproject.toml
 	$(BIN)/python -m pip install --quiet -e '.[dev,postgres]'
 	touch $(STAMP)
 
+# The Spark engine of `inrush pull` (pyspark, about 300 MB; needs Java 17+). CI installs it so
+# the Spark tests run; without it they are skipped with the reason.
+install-spark: install
+	$(BIN)/python -m pip install --quiet -e '.[dev,postgres,spark]'
+
 test: install
 	$(BIN)/python -m pytest -q
 
 lint: install
 	$(BIN)/ruff check detectors service tests benchmarks
 
+# `make demo DEMO_FLAGS=--pull` feeds the demo from its unit-level Parquet logs (inrush pull).
 demo: install
-	$(BIN)/inrush demo
+	$(BIN)/inrush demo $(DEMO_FLAGS)
 
 serve: install
 	$(BIN)/inrush serve

@@ -207,6 +207,10 @@ def _attach(runs: list[_Run], signals: Sequence[Signal], n_days: int,
             if touching:
                 best = max(touching, key=lambda r: min(r.last, last) - max(r.first, first))
                 best.signals.append(signal)
+                if signal.kind == "share_change":
+                    # The change detector dates a long episode (a trickle) that short windows
+                    # only see part of: the run reaches from its start to its peak.
+                    best.first, best.last = min(best.first, first), max(best.last, last)
             else:
                 runs.append(_Run(first, last, [signal]))
             continue

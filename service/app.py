@@ -39,6 +39,7 @@ from .routers import (
     incidents,
     observations,
     problem_types,
+    pulls,
     reweight,
     sensitivity,
     tokens,
@@ -58,7 +59,8 @@ Authenticate with `Authorization: Bearer TOKEN`; scopes are read < write < admin
 
 ROUTERS = (health.router, experiments.router, observations.router, diagnosis.router,
            reweight.router, campaigns.router, sensitivity.router, incidents.router,
-           alerts.router, deliveries.router, tokens.router, problem_types.router, pages_router)
+           pulls.router, alerts.router, deliveries.router, tokens.router, problem_types.router,
+           pages_router)
 # Models referenced from hand-written OpenAPI fragments (bodies parsed by the service itself).
 DOCUMENTED_MODELS: list[type[BaseModel]] = [ProblemDetails, *observations.DOCUMENTED_MODELS]
 _PROBLEM_CONTENT = {PROBLEM_MEDIA_TYPE: {"schema": {"$ref": "#/components/schemas/ProblemDetails"}}}
@@ -104,6 +106,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         worker = start_worker(database, notify_settings)
         catching_up = CatchUpThread(database, settings.catch_up_seconds)
         catching_up.start()
+        scheduler = _start_pulls(database, settings)
         _freeze_startup_objects()
         try:
             yield
@@ -111,6 +114,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             await run_in_threadpool(catching_up.stop)
             if worker is not None:
                 await run_in_threadpool(worker.stop)
+            if scheduler is not None:
+                await run_in_threadpool(scheduler.stop)
             if database.async_reads is not None:
                 await database.async_reads.close()
             database.dispose()
@@ -142,6 +147,16 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         app.include_router(router)
     app.openapi = lambda: _openapi(app)  # type: ignore[method-assign]
     return app
+
+
+def _start_pulls(database: Database, settings: Settings) -> Any:
+    """The daily pull scheduler (``INRUSH_PULL_AT``), or ``None`` when it is off."""
+    if not settings.pull_at:
+        return None
+    from .warehouse.schedule import PullScheduler, parse_time_of_day
+
+    return PullScheduler(database, at=parse_time_of_day(settings.pull_at),
+                         future_days=settings.future_days).start()
 
 
 def _openapi(app: FastAPI) -> dict[str, Any]:

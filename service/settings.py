@@ -71,6 +71,11 @@ class Settings(BaseSettings):
         512, ge=0, description="memory per worker process for observation tables kept between "
                                "requests (0 disables the cache)")
 
+    pull_at: str | None = Field(
+        None, pattern=r"^([01][0-9]|2[0-3]):[0-5][0-9]$",
+        description="UTC time of day (HH:MM) at which `inrush serve` runs the pulls of "
+                    "experiments that have a pull config; unset: no scheduled pulls")
+
     @field_validator("admin_token", mode="before")
     @classmethod
     def _strong_admin_token(cls, value: object) -> object:

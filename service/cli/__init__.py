@@ -11,7 +11,7 @@ import sys
 from collections.abc import Sequence
 
 # Modules that contribute subcommands, in the order they appear in --help.
-_COMMAND_MODULES = ("offline", "demo", "server", "admin", "maintenance")
+_COMMAND_MODULES = ("offline", "demo", "pull", "server", "admin", "maintenance")
 
 EXIT_OK = 0
 EXIT_FAILURE = 1

@@ -33,6 +33,9 @@ def register(subparsers: argparse._SubParsersAction) -> None:  # type: ignore[ty
     demo.add_argument("--no-serve", action="store_true", help="exit after the printout")
     demo.add_argument("--offline", action="store_true",
                       help="no server: run `inrush analyze` and `inrush reweight` on the CSV")
+    demo.add_argument("--pull", action="store_true",
+                      help="feed the server with `inrush pull` from the demo's unit-level "
+                           "Parquet logs instead of the daily CSV")
     demo.set_defaults(handler=run_demo)
 
 
@@ -88,7 +91,12 @@ def _online(args: argparse.Namespace) -> int:
         if not _wait_healthy(client, server):
             print("inrush demo: the server did not start", file=sys.stderr)
             return EXIT_FAILURE
-        _upload(client)
+        if args.pull:
+            from .pull import feed_demo
+
+            feed_demo(client)
+        else:
+            _upload(client)
         _show(client)
         if args.no_serve:
             print("\n" + "\n".join(paragraph(

@@ -123,7 +123,8 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
                            metric: str | None = None,
                            refreshed_at: Any = None,
                            csv_href: str | None = None,
-                           series_tag: str | None = None) -> str:
+                           series_tag: str | None = None,
+                           pull: Mapping[str, Any] | None = None) -> str:
     """The status page of one experiment.
 
     ``experiment``: ``id, title, arms, start_date``; ``diagnosis`` and ``series``: the API's
@@ -133,7 +134,8 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
     their checks and ``sensitivity`` the sensitivity answer, as the API gives them;
     ``refreshed_at``: when the diagnosis was computed; ``csv_href``: where the series CSV is;
     ``series_tag``: the stored entity tag of ``series``, under which its charts are kept
-    between requests (computed when absent).
+    between requests (computed when absent); ``pull``: ``{"last": run}`` when the experiment
+    has a daily pull (``run`` as the pull resource lists it, or ``None``).
     """
     context = experiment_context(
         experiment=experiment, diagnosis=diagnosis, series=series, alerts=alerts,
@@ -143,7 +145,7 @@ def render_experiment_page(*, experiment: Mapping[str, Any],
     chosen = context["metric"]
     if chosen is not None or reweight is not None or reweight_problem is not None:
         context["effects"] = [effect_view(reweight, reweight_problem, chosen)]
-    context.update(links=dict(links or {}), csv_href=csv_href,
+    context.update(links=dict(links or {}), csv_href=csv_href, pull=pull,
                    scripts=assets.script_urls(), stylesheets=assets.stylesheet_urls())
     return environment().get_template("experiment.html").render(**context)
 

@@ -159,6 +159,7 @@ def experiment_page(experiment_id: str, request: Request,
     alpha, max_window = thresholds_of(document)
     sensitivity = (sensitivity_document(traffic, alpha=alpha, max_window=max_window)
                    if traffic is not None else None)
+    pull = _pull_summary(session, experiment_id)
     base = base_url(request)
     links = {"diagnosis (JSON)": f"{base}/v1/experiments/{experiment_id}/diagnosis",
              "daily series (JSON)": f"{base}/v1/experiments/{experiment_id}/series",
@@ -166,6 +167,8 @@ def experiment_page(experiment_id: str, request: Request,
              "alerts (JSON)": f"{base}/v1/alerts?experiment={experiment_id}",
              "campaigns (JSON)": f"{base}/v1/experiments/{experiment_id}/campaigns",
              "sensitivity (JSON)": f"{base}/v1/experiments/{experiment_id}/sensitivity"}
+    if pull is not None:
+        links["daily pull (JSON)"] = f"{base}/v1/experiments/{experiment_id}/pull"
     html = render_experiment_page(
         experiment={"id": experiment.id, "title": experiment.title, "arms": experiment.arms,
                     "start_date": experiment.start_date.isoformat()},
@@ -174,7 +177,7 @@ def experiment_page(experiment_id: str, request: Request,
         links=links, campaigns=campaigns, sensitivity=sensitivity, metric=metric,
         refreshed_at=snapshot.created_at.isoformat() if snapshot else None,
         csv_href=f"/experiments/{experiment_id}/series.csv",
-        series_tag=snapshot.series_etag if snapshot else None)
+        series_tag=snapshot.series_etag if snapshot else None, pull=pull)
     return HTMLResponse(html, headers=PAGE_HEADERS)
 
 
@@ -194,6 +197,17 @@ def series_csv_file(experiment_id: str, request: Request,
     return Response(text, media_type="text/csv; charset=utf-8", headers={
         "Cache-Control": "private, no-store", "X-Content-Type-Options": "nosniff",
         "Content-Disposition": f'attachment; filename="{experiment_id}-series.csv"'})
+
+
+def _pull_summary(session: Session, experiment_id: str) -> dict[str, Any] | None:
+    """The latest pull run, or ``None`` without a pull config or any run."""
+    from ..db.pull_models import PullSchedule
+    from ..routers.pulls import recent_runs
+
+    runs = recent_runs(session, experiment_id, limit=1)
+    if not runs and session.get(PullSchedule, experiment_id) is None:
+        return None
+    return {"last": runs[0].model_dump(mode="json") if runs else None}
 
 
 def _effect(table: ObservationTable | None, experiment: Experiment,
