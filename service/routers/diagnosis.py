@@ -97,9 +97,11 @@ def list_diagnoses(experiment_id: str, session: Session = Depends(get_session),
     snapshots = session.scalars(
         select(DiagnosisSnapshot).where(DiagnosisSnapshot.experiment_id == experiment_id)
         .order_by(DiagnosisSnapshot.version.desc()).limit(limit))
+    # The latest is served with its incidents' lifecycle fields, under their tag.
     return SnapshotList(items=[SnapshotOut(version=s.version, status=s.status, as_of=s.as_of,
-                                           computed_at=s.created_at, etag=s.etag)
-                               for s in snapshots])
+                                           computed_at=s.created_at,
+                                           etag=(s.served_etag or s.etag) if n == 0 else s.etag)
+                               for n, s in enumerate(snapshots)])
 
 
 def _snapshot(session: Session, experiment_id: str, version: int | None) -> DiagnosisSnapshot:

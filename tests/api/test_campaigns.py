@@ -227,13 +227,15 @@ def test_a_registered_campaign_is_named_on_its_flagged_days(client: Any,
     assert set(named) == set(NEWSLETTER_DAYS)
     for day in named.values():
         assert day["campaigns"] == ["new-route-cards"]
-        assert "campaign new-route-cards was running on this day" in day["reasons"]
-    assert any("Registered campaigns on these days: new-route-cards." in line
-               for line in diagnosis["advice"])
-    skewed = client.get("/v1/alerts", params={"experiment": "route-cards",
-                                              "kind": "skewed_day"}).json()["items"]
-    assert {a["key"] for a in skewed} == set(NEWSLETTER_DAYS)
-    assert all(a["detail"]["campaigns"] == ["new-route-cards"] for a in skewed)
+        assert "campaign new-route-cards was running" in day["reasons"]
+    assert ("explained by the registered campaign new-route-cards"
+            in diagnosis["incidents"][0]["summary"])
+    # The incident names the campaign and says it explains the inflow.
+    [incident] = client.get("/v1/experiments/route-cards/incidents").json()["items"]
+    assert incident["campaigns"] == ["new-route-cards"]
+    assert incident["explained_by"].startswith(
+        "Explained by the registered campaign new-route-cards")
+    assert diagnosis["incidents"][0]["explained_by"] == incident["explained_by"]
 
 
 def test_a_campaign_registered_before_the_data_is_named_once_it_arrives(

@@ -141,6 +141,7 @@ def test_the_diagnosis_carries_the_incidents_and_its_tag_follows_them(
     new_tag = fresh.headers["etag"]
     assert new_tag != tag
     assert client.get(f"{BASE}/diagnosis", headers={"If-None-Match": new_tag}).status_code == 304
+    assert client.get(f"{BASE}/diagnoses").json()["items"][0]["etag"] == new_tag
     by_version = client.get(f"{BASE}/diagnosis", params={"version": version})
     assert by_version.headers["etag"] == new_tag and by_version.json() == fresh.json()
 
