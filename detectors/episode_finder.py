@@ -478,8 +478,10 @@ def _summary(shape: str, arm: str, start: dt.date, end: dt.date, units: float,
         return (f"Inflow into {arm} {_span(start, end)}: about {units:+,.0f} units over plan"
                 f"{via}{explained}.")
     if shape == SHORTFALL:
+        running = (f"; the registered campaign {' and '.join(campaigns)} ran then but does not "
+                   "explain units going missing" if campaigns else "")
         return (f"Shortfall in {arm} {_span(start, end)}: about {abs(units):,.0f} units "
-                f"missing against plan{via}{explained}.")
+                f"missing against plan{via}{running}.")
     if shape == ALLOCATION_STEP:
         return (f"From {start.isoformat()}"
                 + (f" to {end.isoformat()}" if end != start else "")

@@ -13,6 +13,7 @@ from apihelpers import DEMO_CSV, assert_problem, corrected_demo_csv, demo_csv_te
 from scipy import stats
 
 from detectors import AllocationSchedule, ObservationTable, diagnose
+from detectors.contamination import impact_function
 from service.csvio import read_observations_csv
 from service.demo import scenario
 
@@ -34,9 +35,10 @@ def test_served_document_is_the_detectors_diagnosis_of_the_stored_rows(
     served = client.get(BASE + "/diagnosis")
     assert served.status_code == 200
     table = ObservationTable.from_frame(read_observations_csv(DEMO_CSV), scenario.ARMS)
+    # The service measures each incident's impact on the metrics, as diagnose's hook does.
     direct = diagnose(table, AllocationSchedule.constant(scenario.ARMS, [0.5, 0.5],
                                                          scenario.START),
-                      experiment="route-cards").to_dict()
+                      experiment="route-cards", impact=impact_function).to_dict()
     document = served.json()
     # Each incident is the detectors' episode with the stored incident's fields added.
     stored = ("id", "experiment", "status", "opened_at", "acknowledged_at", "resolved_at",
