@@ -317,8 +317,8 @@ def run(quick: bool, parts: Sequence[str] = ("aa", "cases")) -> dict[str, Any]:
     aa_reps = {"aa_2arm": 40, "aa_3arm": 10, "aa_small": 10, "aa_huge": 10, "aa_ramp": 10} \
         if quick else {"aa_2arm": 1200, "aa_3arm": 400, "aa_small": 200, "aa_huge": 200,
                        "aa_ramp": 200}
-    case_reps = 4 if quick else 60
-    novelty_reps = 5 if quick else 100
+    case_reps = 4 if quick else 200
+    novelty_reps = 5 if quick else 200
     equivalence_reps = 5 if quick else 60
     started = time.time()
     result: dict[str, Any] = {}
