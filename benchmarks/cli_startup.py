@@ -26,6 +26,8 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
+from .sections import write_section
+
 HERE = Path(__file__).parent
 ROOT = HERE.parent
 DEMO_CSV = ROOT / "service" / "demo" / "larkspur_route_cards.csv"
@@ -37,6 +39,7 @@ COMMANDS: dict[str, list[str]] = {
     "argument_error": ["analyze", str(DEMO_CSV)],  # --arms missing
     "analyze_28_days": ["analyze", str(DEMO_CSV), "--arms", "control,cards"],
 }
+
 
 
 def time_command(argv: Sequence[str], repeat: int) -> tuple[list[float], list[float]]:
@@ -145,19 +148,7 @@ def write(figures: dict[str, Any]) -> None:
                   "follow. The command line loads nothing else (no web framework, no "
                   "database layer)."]
     lines.append(END)
-    results_md = HERE / "RESULTS.md"
-    text = results_md.read_text() if results_md.exists() else "# Benchmark results\n"
-    section = "\n".join(lines)
-    if START in text:
-        text = re.sub(re.escape(START) + ".*?" + re.escape(END), lambda _: section, text,
-                      flags=re.S)
-    else:
-        text = text.rstrip() + "\n\n" + section + "\n"
-    results_md.write_text(text)
-    results_json = HERE / "results.json"
-    stored = json.loads(results_json.read_text()) if results_json.exists() else {}
-    stored["cli_startup"] = figures
-    results_json.write_text(json.dumps(stored, indent=2) + "\n")
+    write_section(START, END, lines, {"cli_startup": figures})
 
 
 def main(argv: Sequence[str] | None = None) -> int:

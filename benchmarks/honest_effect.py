@@ -33,7 +33,6 @@ from __future__ import annotations
 import argparse
 import json
 import multiprocessing
-import re
 import time
 import zlib
 from dataclasses import replace
@@ -55,6 +54,7 @@ from detectors.honest import honest_effect
 from detectors.reweight import reweight
 
 from .detection import BASE_SEED, wilson
+from .sections import write_section
 from .simulate import Inflow, Simulation, many_sources, reference_scenario, simulate
 
 HERE = Path(__file__).resolve().parent
@@ -297,19 +297,7 @@ def write(summary: dict[str, Any]) -> None:
     lines += ["", "`incident_impact` (median of 30 calls, one incident, one metric): "
               f"{impact['28x2x5']:.2f} ms at 28 days x 2 arms x 5 sources (goal: a few ms), "
               f"{impact['365x4x100']:.1f} ms at 365 x 4 x 100 (goal: < 100 ms).", END]
-    results_md = HERE / "RESULTS.md"
-    text = results_md.read_text() if results_md.exists() else "# Benchmark results\n"
-    section = "\n".join(lines)
-    if START in text:
-        text = re.sub(re.escape(START) + ".*?" + re.escape(END), lambda _: section, text,
-                      flags=re.S)
-    else:
-        text = text.rstrip() + "\n\n" + section + "\n"
-    results_md.write_text(text)
-    results_json = HERE / "results.json"
-    figures = json.loads(results_json.read_text()) if results_json.exists() else {}
-    figures["honest_effect"] = summary
-    results_json.write_text(json.dumps(figures, indent=2) + "\n")
+    write_section(START, END, lines, {"honest_effect": summary})
 
 
 if __name__ == "__main__":

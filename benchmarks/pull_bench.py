@@ -22,13 +22,14 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import re
 import resource
 import subprocess
 import sys
 import time
 from pathlib import Path
 from typing import Any
+
+from .sections import write_section
 
 HERE = Path(__file__).resolve().parent
 START, END = "<!-- pull:start -->", "<!-- pull:end -->"
@@ -326,15 +327,7 @@ def write(figures: dict[str, Any]) -> None:
               "memory; at 5 million rows pandas' vectorised sort and group-by stay within a "
               "small factor, and the pull's case is the size pandas cannot hold at all.",
               END]
-    results_md = HERE / "RESULTS.md"
-    text = results_md.read_text() if results_md.exists() else "# Benchmark results\n"
-    section = "\n".join(lines)
-    if START in text:
-        text = re.sub(re.escape(START) + ".*?" + re.escape(END), lambda _: section, text,
-                      flags=re.S)
-    else:
-        text = text.rstrip() + "\n\n" + section + "\n"
-    results_md.write_text(text)
+    write_section(START, END, lines, {"pull": figures})
 
 
 if __name__ == "__main__":

@@ -12,8 +12,6 @@ figure counts only the window that matches the inflow, so it is slightly conserv
 
 from __future__ import annotations
 
-import json
-import re
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -24,8 +22,11 @@ from detectors.sensitivity import sensitivity
 from detectors.sequential import sequential_srm
 from detectors.srm import scan_windows
 
+from .sections import write_section
+
 HERE = Path(__file__).parent
 START, END = "<!-- sensitivity:start -->", "<!-- sensitivity:end -->"
+
 
 
 @dataclass(frozen=True)
@@ -163,20 +164,9 @@ def write(rows: list[dict[str, object]], period_rows: list[dict[str, object]]) -
         lines.append(f"| {row['case']} | {100 * float(row['stated_relative_shift']):.2f}% | "  # type: ignore[arg-type]
                      f"{row['simulated_rate']:.3f} | {row['simulated_rate_at_half_shift']:.3f} |")
     lines += ["", f"{rows[0]['reps']} simulated experiments per row.", END]
-    results_md = HERE / "RESULTS.md"
-    text = results_md.read_text() if results_md.exists() else "# Benchmark results\n"
-    section = "\n".join(lines)
-    if START in text:
-        text = re.sub(re.escape(START) + ".*?" + re.escape(END), lambda _: section, text,
-                      flags=re.S)
-    else:
-        text = text.rstrip() + "\n\n" + section + "\n"
-    results_md.write_text(text)
-    results_json = HERE / "results.json"
-    figures = json.loads(results_json.read_text()) if results_json.exists() else {}
-    figures["sensitivity.stated_vs_simulated"] = rows
-    figures["sensitivity.whole_period_stated_vs_simulated"] = period_rows
-    results_json.write_text(json.dumps(figures, indent=2) + "\n")
+    write_section(START, END, lines, {
+        "sensitivity.stated_vs_simulated": rows,
+        "sensitivity.whole_period_stated_vs_simulated": period_rows})
 
 
 if __name__ == "__main__":

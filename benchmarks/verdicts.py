@@ -26,7 +26,6 @@ import argparse
 import datetime as dt
 import json
 import multiprocessing
-import re
 import time
 import zlib
 from collections.abc import Sequence
@@ -43,6 +42,7 @@ from detectors.sequential import sequential_srm
 from detectors.srm import chisquare_rows, expected_counts, overall_srm
 
 from .detection import wilson
+from .sections import write_section
 from .simulate import Inflow, Scenario, simulate
 
 HERE = Path(__file__).resolve().parent
@@ -438,19 +438,7 @@ def write(result: dict[str, Any]) -> None:
     lines += ["", f"Run time of the last part run: {result['seconds']:.0f} s. *Previous* A/A "
               f"rates come from the first {PREVIOUS_RUNS} runs of each family (its status is "
               "recomputed at every look, PELT included).", END]
-    path = HERE / "RESULTS.md"
-    text = path.read_text() if path.exists() else "# Benchmark results\n"
-    section = "\n".join(lines)
-    if START in text:
-        text = re.sub(re.escape(START) + ".*?" + re.escape(END), lambda _: section, text,
-                      flags=re.S)
-    else:
-        text = text.rstrip() + "\n\n" + section + "\n"
-    path.write_text(text)
-    figures_path = HERE / "results.json"
-    figures = json.loads(figures_path.read_text()) if figures_path.exists() else {}
-    figures["verdicts"] = result
-    figures_path.write_text(json.dumps(figures, indent=2) + "\n")
+    write_section(START, END, lines, {"verdicts": result})
 
 
 def main(argv: Sequence[str] | None = None) -> None:

@@ -32,7 +32,6 @@ import concurrent.futures
 import datetime as dt
 import json
 import os
-import re
 import statistics
 import tempfile
 import time
@@ -41,6 +40,7 @@ from pathlib import Path
 from typing import Any
 
 from .http import Server, _check, cpu_times, postgres_database, steal_share
+from .sections import write_section
 from .wide_data import WIDE_ARMS, wide_csv
 
 HERE = Path(__file__).resolve().parent
@@ -280,19 +280,7 @@ def write(results: dict[str, Any]) -> None:
         lines.append(f"Load average (1 min) at the end of the run: {load} on 2 cores.")
     lines += ["", *NOTES]
     lines.append(END)
-    results_md = HERE / "RESULTS.md"
-    text = results_md.read_text() if results_md.exists() else "# Benchmark results\n"
-    section = "\n".join(lines)
-    if START in text:
-        text = re.sub(re.escape(START) + ".*?" + re.escape(END), lambda _: section, text,
-                      flags=re.S)
-    else:
-        text = text.rstrip() + "\n\n" + section + "\n"
-    results_md.write_text(text)
-    results_json = HERE / "results.json"
-    figures = json.loads(results_json.read_text()) if results_json.exists() else {}
-    figures["wide"] = results
-    results_json.write_text(json.dumps(figures, indent=2) + "\n")
+    write_section(START, END, lines, {"wide": results})
 
 
 def main(argv: list[str] | None = None) -> None:
