@@ -53,8 +53,9 @@ def test_page_shows_status_alerts_charts_and_the_effect(client: Any, anonymous: 
     upload_csv(client, demo_csv_text())
     diagnosis = client.get("/v1/experiments/route-cards/diagnosis").json()
     alerts = client.get("/v1/alerts", params={"experiment": "route-cards"}).json()["items"]
-    effect = client.post("/v1/experiments/route-cards/reweight", json={
-        "metric": "routes_saved", "target": "reference_arm", "by": ["source", "window"]}).json()
+    # The page shows what the reweight endpoint answers without options (the honest default).
+    effect = client.post("/v1/experiments/route-cards/reweight",
+                         json={"metric": "routes_saved"}).json()
     del client.headers["Authorization"]
     assert login(anonymous, token_for("read")).status_code == 303
     page = anonymous.get("/experiments/route-cards")
@@ -115,8 +116,8 @@ def test_metric_query_picks_the_chart_and_the_effect_and_the_files_are_served(
         client: Any, anonymous: Any, token_for: Any) -> None:
     client.post("/v1/experiments", json=EXPERIMENT)
     upload_csv(client, two_metric_demo_csv())
-    expected = client.post("/v1/experiments/route-cards/reweight", json={
-        "metric": "trail_minutes", "target": "reference_arm", "by": ["source", "window"]}).json()
+    expected = client.post("/v1/experiments/route-cards/reweight",
+                           json={"metric": "trail_minutes"}).json()
     series = client.get("/v1/experiments/route-cards/series").json()
     del client.headers["Authorization"]
     login(anonymous, token_for("read"))

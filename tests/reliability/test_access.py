@@ -39,13 +39,16 @@ from tests.reliability.support import EXPERIMENT, LiveServer, batch_rows, dump_d
 
 PUBLIC = {("GET", "/healthz"), ("GET", "/metrics"), ("GET", "/problems/{slug}")}
 READ_POSTS = {("POST", "/v1/experiments/{experiment_id}/reweight")}  # computes, stores nothing
+# A pull config names files and databases the server itself reads: setting it is for admins.
+ADMIN_WRITES = {("PUT", "/v1/experiments/{experiment_id}/pull"),
+                ("DELETE", "/v1/experiments/{experiment_id}/pull")}
 
 
 def required_scope(method: str, path: str) -> str | None:
     """The scope an operation needs by the access rules (None: public)."""
     if (method, path) in PUBLIC:
         return None
-    if path.startswith("/v1/tokens"):
+    if path.startswith("/v1/tokens") or (method, path) in ADMIN_WRITES:
         return "admin"
     if method == "GET" or (method, path) in READ_POSTS:
         return "read"
