@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import datetime as dt
 from typing import Annotated
-from urllib.parse import urlencode
 
 from fastapi import APIRouter, Body, Depends, Query, Request
 from sqlalchemy import select
@@ -25,7 +24,7 @@ from ..schemas.alerts import (
 )
 from ..schemas.common import problem_responses
 from ..tokens import Principal
-from .common import MAX_BIGINT, base_url
+from .common import MAX_BIGINT, base_url, next_page_url
 
 router = APIRouter(prefix="/v1/alerts", tags=["alerts"])
 
@@ -68,10 +67,7 @@ def list_alerts(request: Request, session: Session = Depends(get_session),
     found = list(session.scalars(query))
     page = found[:limit]
     next_cursor = str(page[-1].id) if len(found) > limit else None
-    next_url = None
-    if next_cursor is not None:
-        params = [(k, v) for k, v in request.query_params.multi_items() if k != "cursor"]
-        next_url = f"{base_url(request)}/v1/alerts?{urlencode([*params, ('cursor', next_cursor)])}"
+    next_url = next_page_url(request, "/v1/alerts", next_cursor)
     return AlertPage(items=[alert_out(request, a) for a in page], next=next_cursor,
                      next_url=next_url)
 

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from urllib.parse import urlencode
+
 from fastapi import Request
 from sqlalchemy.orm import Session
 
@@ -20,6 +22,15 @@ MAX_INT = 2**31 - 1
 def base_url(request: Request) -> str:
     settings: Settings = request.app.state.settings
     return settings.base_url(str(request.base_url))
+
+
+def next_page_url(request: Request, path: str, cursor: str | None) -> str | None:
+    """The request's own URL on ``path`` with ``cursor`` in place of its cursor parameter
+    (``None`` without a next page), for the ``next_url`` of cursor-paged lists."""
+    if cursor is None:
+        return None
+    params = [(k, v) for k, v in request.query_params.multi_items() if k != "cursor"]
+    return f"{base_url(request)}{path}?{urlencode([*params, ('cursor', cursor)])}"
 
 
 def experiment_url(request: Request, experiment_id: str, suffix: str = "") -> str:

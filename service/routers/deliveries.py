@@ -6,7 +6,7 @@ from __future__ import annotations
 from collections.abc import Iterable
 
 from fastapi import APIRouter, Depends
-from sqlalchemy import select
+from sqlalchemy import ColumnElement, select
 from sqlalchemy.orm import Session, selectinload
 
 from ..auth import require_read
@@ -38,14 +38,9 @@ def list_incident_deliveries(incident_id: int, session: Session = Depends(get_se
     incident = session.get(Incident, incident_id) if 1 <= incident_id <= MAX_BIGINT else None
     if incident is None:
         raise ProblemError(404, f"There is no incident {incident_id}.")
-    experiment = session.get(Experiment, incident.experiment_id)
-    return IncidentDeliveryList(
-        incident=incident_id,
-        webhook_configured=bool(experiment is not None and experiment.webhook_url),
-        items=_deliveries(session.scalars(
-            select(Outbox).where(Outbox.incident_id == incident_id)
-            .options(selectinload(Outbox.delivery_attempts)).order_by(Outbox.id)),
-            principal.scope >= Scope.write))
+    configured, items = _queued(session, Outbox.incident_id == incident_id,
+                                incident.experiment_id, principal.scope >= Scope.write)
+    return IncidentDeliveryList(incident=incident_id, webhook_configured=configured, items=items)
 
 
 @router.get("/v1/alerts/{alert_id}/deliveries", response_model=DeliveryList,
@@ -59,17 +54,22 @@ def list_deliveries(alert_id: int, session: Session = Depends(get_session),
     What the receiver answered (the start of its reply, a redirect's target) is shown to
     write and admin tokens only: a receiver may sit on an internal network whose replies a
     read token should not see."""
-    full = principal.scope >= Scope.write
     alert = session.get(Alert, alert_id) if 1 <= alert_id <= MAX_BIGINT else None
     if alert is None:
         raise ProblemError(404, f"There is no alert {alert_id}.")
-    experiment = session.get(Experiment, alert.experiment_id)
-    return DeliveryList(
-        alert=alert_id,
-        webhook_configured=bool(experiment is not None and experiment.webhook_url),
-        items=_deliveries(session.scalars(
-            select(Outbox).where(Outbox.alert_id == alert_id)
-            .options(selectinload(Outbox.delivery_attempts)).order_by(Outbox.id)), full))
+    configured, items = _queued(session, Outbox.alert_id == alert_id, alert.experiment_id,
+                                principal.scope >= Scope.write)
+    return DeliveryList(alert=alert_id, webhook_configured=configured, items=items)
+
+
+def _queued(session: Session, owner: ColumnElement[bool], experiment_id: str, full: bool
+            ) -> tuple[bool, list[DeliveryOut]]:
+    """Whether the experiment has a webhook, and the notifications ``owner`` selects, oldest
+    first, with their attempts."""
+    experiment = session.get(Experiment, experiment_id)
+    rows = session.scalars(select(Outbox).where(owner)
+                           .options(selectinload(Outbox.delivery_attempts)).order_by(Outbox.id))
+    return bool(experiment is not None and experiment.webhook_url), _deliveries(rows, full)
 
 
 def _deliveries(rows: Iterable[Outbox], full: bool) -> list[DeliveryOut]:

@@ -4,7 +4,6 @@
 from __future__ import annotations
 
 from typing import Annotated, Any
-from urllib.parse import urlencode
 
 from fastapi import APIRouter, Body, Depends, Query, Request
 from sqlalchemy import Select, select
@@ -29,7 +28,7 @@ from ..schemas.incidents import (
 from ..tokens import Principal
 from .alerts import _parse_since as parse_since
 from .alerts import _query_problem as query_problem
-from .common import MAX_BIGINT, base_url, get_experiment
+from .common import MAX_BIGINT, base_url, get_experiment, next_page_url
 
 router = APIRouter(tags=["incidents"])
 
@@ -119,10 +118,7 @@ def _page(request: Request, session: Session, path: str, experiment: str | None,
     found = list(session.scalars(query))
     page = found[:limit]
     next_cursor = str(page[-1].id) if len(found) > limit else None
-    next_url = None
-    if next_cursor is not None:
-        params = [(k, v) for k, v in request.query_params.multi_items() if k != "cursor"]
-        next_url = f"{base_url(request)}{path}?{urlencode([*params, ('cursor', next_cursor)])}"
+    next_url = next_page_url(request, path, next_cursor)
     return IncidentPage(items=[incident_out(request, i) for i in page], next=next_cursor,
                         next_url=next_url)
 
