@@ -404,13 +404,12 @@ def _flagged_days(episodes: Sequence[Episode], table: ObservationTable, planned:
             if shares:
                 reasons.append(f"source {shares[0].source} explains "
                                f"{100 * shares[0].share_of_excess:.0f}% of the day's imbalance")
-            campaigns = tuple(c for c in episode.campaigns)
-            reasons.extend(f"campaign {name} was running" for name in campaigns)
+            reasons.extend(f"campaign {name} was running" for name in episode.campaigns)
             flagged.append(FlaggedDay(
                 day.date, episode.severity, episode.p_value, episode.shape, episode.arm,
                 day.units,
                 {a: float(v) for a, v in zip(arms, excess[i].sum(axis=1), strict=True)},
-                shares, campaigns, tuple(reasons)))
+                shares, episode.campaigns, tuple(reasons)))
     return tuple(sorted(flagged, key=lambda d: d.date))
 
 

@@ -175,16 +175,6 @@ class Sensitivity:
         }
 
 
-def window_family_size(n_days: int, max_window: int) -> int:
-    """Number of windows of 1..``max_window`` consecutive days in ``n_days`` days.
-
-    Example:
-        >>> window_family_size(28, 7)
-        175
-    """
-    return int(sum(n_days - length + 1 for length in range(1, min(max_window, n_days) + 1)))
-
-
 def chisquare_power(noncentrality: float, df: int, level: float) -> float:
     """Power of a chi-square test at ``level`` with ``df`` degrees of freedom when the statistic
     is noncentral chi-square with the given noncentrality (Cohen 1988, ch. 7).
@@ -491,5 +481,4 @@ __all__ = [
     "sequential_critical_statistic",
     "smallest_inflow",
     "smallest_share_shift",
-    "window_family_size",
 ]
