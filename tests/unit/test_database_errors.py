@@ -56,8 +56,9 @@ def test_an_unreachable_postgresql_server_is_transient() -> None:
 
 @pytest.mark.postgres
 def test_postgresql_limits_are_not_transient() -> None:
-    if postgres_problem():
-        pytest.skip(postgres_problem() or "")
+    problem = postgres_problem()
+    if problem:
+        pytest.skip(problem)
     too_many = "SELECT concat_ws(',', " + ", ".join(["'a'"] * 101) + ")"
     error = _error(POSTGRES_URL, too_many)
     assert error.orig.sqlstate == "54023"  # type: ignore[union-attr]
