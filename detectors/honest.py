@@ -53,7 +53,7 @@ from dataclasses import dataclass, replace
 from typing import Any, Protocol
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from .allocation import AllocationSchedule
 from .bounds import Bounds, identified_set, trimmed_mean_bounds
@@ -343,7 +343,7 @@ def honest_effect(table: ObservationTable, metric: str, cells: Sequence[Cell],
                                   "on uncontaminated days in every arm; only the bounds can be "
                                   "given")]) from None
     arms = table.arms
-    z = float(stats.norm.ppf(0.5 + confidence / 2))
+    z = float(special.ndtri(0.5 + confidence / 2))  # the normal quantile
     with np.errstate(divide="ignore", invalid="ignore"):
         means = np.where(n > 0, total / n, np.nan)
         var_of_mean = np.where(n > 0, _unit_variance(n, total, total_sq) / np.maximum(n, 1), 0.0)

@@ -50,7 +50,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from .bounds import Bounds
 from .data import ObservationTable
@@ -242,7 +242,7 @@ def reweight(table: ObservationTable, metric: str, *, target: str = "reference_a
     variance_of_mean = np.where(cells.n > 0, _unit_variance(cells.n, cells.total,
                                                             cells.total_sq)
                                 / np.maximum(cells.n, 1), 0.0)
-    z = float(stats.norm.ppf(0.5 + confidence / 2))
+    z = float(special.ndtri(0.5 + confidence / 2))  # the normal quantile
 
     naive_mean = cells.total.sum(axis=1) / arm_n
     naive_var = _unit_variance(arm_n, cells.total.sum(axis=1), cells.total_sq.sum(axis=1)) / arm_n

@@ -13,8 +13,9 @@ statistic is then approximately noncentral chi-square with ``A - 1`` degrees of 
 noncentrality ``lambda = sum_b (O_b - E_b)^2 / E_b = K x^2 (1 - w_a) / ((N + x) w_a)``
 (Cohen 1988, "Statistical Power Analysis for the Behavioral Sciences", 2nd ed., ch. 7:
 ``lambda = N w^2`` with effect size ``w``). The power is
-``P(ncx2(A - 1, lambda) > chi2.isf(alpha / m, A - 1))`` (``scipy.stats.ncx2``) and the smallest
-``x`` reaching the target power is found with ``scipy.optimize.brentq``.
+``P(ncx2(A - 1, lambda) > chi2.isf(alpha / m, A - 1))`` (the distribution functions of
+``scipy.special``: ``chndtr``, ``chdtri``) and the noncentrality reaching the target power comes
+from ``scipy.special.chndtrinc``; the smallest ``x`` then solves a quadratic.
 
 Only the window that matches the inflow is counted, so the figure is slightly conservative:
 neighbouring windows overlapping the inflow can also fire.
@@ -47,7 +48,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import optimize, special, stats
+from scipy import optimize, special
 
 from .errors import InputError, Problem
 from .sequential import DEFAULT_CONCENTRATION, log_bayes_factor
@@ -183,10 +184,10 @@ def chisquare_power(noncentrality: float, df: int, level: float) -> float:
         >>> round(chisquare_power(7.849, 1, 0.05), 3)  # (1.96 + 0.8416)^2: 80% at 5%, df 1
         0.8
     """
-    critical = stats.chi2.isf(level, df)
+    critical = special.chdtri(df, level)  # chi2.isf
     if noncentrality <= 0:
-        return float(stats.chi2.sf(critical, df))
-    return float(stats.ncx2.sf(critical, df, noncentrality))
+        return float(special.chdtrc(df, critical))  # chi2.sf
+    return float(1.0 - special.chndtr(critical, df, noncentrality))  # ncx2.sf
 
 
 def required_noncentrality(df: int, level: float, power: float) -> float:
@@ -196,7 +197,7 @@ def required_noncentrality(df: int, level: float, power: float) -> float:
         >>> round(required_noncentrality(1, 0.05, 0.8), 2)
         7.85
     """
-    return noncentrality_beyond(float(stats.chi2.isf(level, df)), df, power)
+    return noncentrality_beyond(float(special.chdtri(df, level)), df, power)
 
 
 def noncentrality_beyond(critical: float, df: int, power: float) -> float:
@@ -207,17 +208,10 @@ def noncentrality_beyond(critical: float, df: int, power: float) -> float:
         >>> round(noncentrality_beyond(3.841459, 1, 0.8), 2)  # chi2.isf(0.05, 1)
         7.85
     """
-    def gap(noncentrality: float) -> float:
-        beyond = (stats.chi2.sf(critical, df) if noncentrality <= 0
-                  else stats.ncx2.sf(critical, df, noncentrality))
-        return float(beyond) - power
-
-    if gap(0.0) >= 0:
+    if float(special.chdtrc(df, critical)) >= power:
         return 0.0
-    upper = 1.0
-    while gap(upper) < 0:
-        upper *= 2.0
-    return float(optimize.brentq(gap, 0.0, upper, xtol=1e-10, rtol=1e-12))
+    # scipy.special.chndtrinc inverts the noncentral chi-square cdf in the noncentrality.
+    return float(special.chndtrinc(critical, df, 1.0 - power))
 
 
 def inflow_noncentrality(inflow: float, baseline: float, weights: Sequence[float] | np.ndarray,
@@ -254,9 +248,7 @@ def smallest_inflow(baseline: float, weights: Sequence[float] | np.ndarray, arm:
     # The noncentrality reaching ``power`` (scipy.special.chndtrinc inverts the noncentral
     # chi-square cdf in it), then lambda = K x^2 (1 - w) / ((N + x) w) solved for x >= 0.
     df = len(weights) - 1
-    critical = float(stats.chi2.isf(level, df))
-    target = 0.0 if float(stats.chi2.sf(critical, df)) >= power else float(
-        special.chndtrinc(critical, df, 1.0 - power))
+    target = noncentrality_beyond(float(special.chdtri(df, level)), df, power)
     w = float(np.asarray(weights, dtype=float)[arm])
     a, b = days * (1.0 - w), target * w
     return float((b + math.sqrt(b * b + 4.0 * a * b * baseline)) / (2.0 * a))

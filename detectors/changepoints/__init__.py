@@ -1,4 +1,4 @@
-"""Changepoint detection (PELT through ruptures) on arm shares and entrant engagement.
+"""Changepoint detection (PELT) on arm shares and entrant engagement.
 
 Example:
     >>> import numpy as np

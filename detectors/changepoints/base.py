@@ -1,9 +1,10 @@
 """Shared pieces of the changepoint detectors: results, settings, penalty and the cost base class.
 
 Changepoints are found by PELT (Killick, Fearnhead & Eckley 2012, "Optimal detection of
-changepoints with a linear computational cost", JASA 107:1590) through ``ruptures`` (Truong,
-Oudre & Vayatis 2020, "Selective review of offline change point detection methods", Signal
-Processing 167). Costs follow ruptures' ``BaseCost`` interface.
+changepoints with a linear computational cost", JASA 107:1590). Costs follow the interface of
+``ruptures``' ``BaseCost`` (Truong, Oudre & Vayatis 2020, "Selective review of offline change
+point detection methods", Signal Processing 167): ``model``, ``min_size``, ``fit(signal)`` and
+``error(start, end)``, so the tests can hand them to ruptures' own PELT as the reference.
 """
 
 from __future__ import annotations
@@ -14,10 +15,12 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from ruptures.base import BaseCost
-from ruptures.costs import NotEnoughPoints
 
 from ..errors import InputError
+
+
+class SegmentTooShortError(Exception):
+    """A segment shorter than the cost's ``min_size`` has no cost (ruptures' NotEnoughPoints)."""
 
 
 @dataclass(frozen=True, slots=True)
@@ -117,18 +120,23 @@ class ChangepointConfig:
         return self.penalty_scale * information_penalty(params_per_segment, n_units)
 
 
-class SegmentCost(BaseCost):
-    """A ruptures cost computed from cumulative sums.
+class SegmentCost(abc.ABC):
+    """A segment cost computed from cumulative sums.
 
     Subclasses implement :meth:`errors`, the costs of many segments ``[start, end)`` at once
-    (``starts`` and ``ends`` broadcast against each other); :meth:`error`, what ruptures' own
-    estimators call, is its scalar case, so both always agree. ``fit`` must set ``signal``
-    (ruptures reads its length) and the cumulative sums, making each segment cost O(arms)
-    whatever its length. Entries with ``start >= end`` are meaningless and may be NaN.
+    (``starts`` and ``ends`` broadcast against each other); :meth:`error`, what a ruptures
+    estimator calls, is its scalar case, so both always agree. ``fit`` must set ``signal``
+    (a ruptures estimator reads its length) and the cumulative sums, making each segment cost
+    O(arms) whatever its length. Entries with ``start >= end`` are meaningless and may be NaN.
     """
 
+    model: str
     signal: np.ndarray
     min_size: int
+
+    @abc.abstractmethod
+    def fit(self, signal: np.ndarray) -> SegmentCost:
+        """Precompute the cumulative sums of ``signal`` (days first); returns ``self``."""
 
     @abc.abstractmethod
     def errors(self, starts: np.ndarray, ends: np.ndarray | int) -> np.ndarray:
@@ -136,5 +144,5 @@ class SegmentCost(BaseCost):
 
     def error(self, start: int, end: int) -> float:
         if end - start < self.min_size:
-            raise NotEnoughPoints
+            raise SegmentTooShortError
         return float(self.errors(np.array([start]), end)[0])

@@ -1,6 +1,6 @@
 """Segment costs for PELT: arm shares of daily counts, engagement gaps, and a 1-D mean shift.
 
-Each cost is a ruptures ``BaseCost`` (through :class:`~.base.SegmentCost`) whose ``fit``
+Each cost is a :class:`~.base.SegmentCost` (ruptures' ``BaseCost`` interface) whose ``fit``
 precomputes cumulative sums, so the cost of any segment takes O(arms) operations.
 """
 

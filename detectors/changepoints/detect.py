@@ -1,9 +1,9 @@
 """Changepoints in arm shares and in entrant engagement of an experiment's daily data.
 
-Both detectors run PELT (Killick, Fearnhead & Eckley 2012) through ruptures (Truong, Oudre &
-Vayatis 2020) with a likelihood cost and a BIC penalty on the number of units
-(:func:`~.base.information_penalty`); a changepoint's ``date`` is the first day of the new
-segment.
+Both detectors run PELT (Killick, Fearnhead & Eckley 2012; :mod:`.pelt`, checked against
+ruptures, Truong, Oudre & Vayatis 2020) with a likelihood cost and a BIC penalty on the number
+of units (:func:`~.base.information_penalty`); a changepoint's ``date`` is the first day of the
+new segment.
 """
 
 from __future__ import annotations

@@ -1,15 +1,16 @@
-"""PELT through ruptures, with each step's candidate costs evaluated in one vectorised call.
+"""PELT with each step's candidate costs evaluated in one vectorised call.
 
 ruptures' ``Pelt`` (Truong, Oudre & Vayatis 2020) evaluates the cost of every admissible
 segment one Python call at a time. Without changes in the data PELT's pruning (Killick,
 Fearnhead & Eckley 2012) removes almost nothing, so a 180-day series costs ~16,000 calls, about
-16 ms even for the cheapest cost. :class:`VectorisedPelt` keeps ruptures' estimator, its
+16 ms even for the cheapest cost. :class:`VectorisedPelt` follows ruptures' estimator, its
 parameters and its recursion (same candidate ends, same admissible starts, same pruning rule
 and tie-breaking) but takes the costs of all admissible starts of an end in one numpy step:
 from a table of every segment cost computed in one broadcast call for series of up to 400
-days, or from one :meth:`~.base.SegmentCost.errors` call per end beyond. Costs that are not
-:class:`~.base.SegmentCost` run ruptures' own loop. tests/unit/test_changepoints.py checks that
-the breakpoints equal those of ruptures' ``Pelt``.
+days, or from one :meth:`~.base.SegmentCost.errors` call per end beyond. It does not import
+ruptures, whose package loads scipy.stats, scipy.signal and scipy.spatial (most of the
+command line's start-up); tests/unit/test_changepoints.py checks that the breakpoints equal
+those of ruptures' ``Pelt`` with the same costs.
 """
 
 from __future__ import annotations
@@ -18,25 +19,43 @@ import math
 from collections.abc import Callable
 
 import numpy as np
-import ruptures as rpt
 
+from ..errors import InputError
 from .base import SegmentCost
 
 
-class VectorisedPelt(rpt.Pelt):
-    """ruptures' PELT, vectorised over the admissible starts of each candidate end.
+class VectorisedPelt:
+    """PELT over a :class:`~.base.SegmentCost`, vectorised over the admissible starts of each
+    candidate end; ``fit(signal)`` then ``predict(penalty)`` as in ruptures.
 
     Example:
         >>> from detectors.changepoints.costs import GaussianMeanCost
         >>> y = np.r_[np.zeros(20), np.full(20, 5.0)] + np.random.default_rng(1).normal(size=40)
-        >>> VectorisedPelt(custom_cost=GaussianMeanCost(), min_size=1, jump=1).fit(y).predict(20.0)
+        >>> VectorisedPelt(GaussianMeanCost(), min_size=1, jump=1).fit(y).predict(20.0)
         [20, 40]
     """
 
+    def __init__(self, cost: SegmentCost, *, min_size: int = 1, jump: int = 1) -> None:
+        if min_size < 1 or jump < 1:
+            raise InputError("min_size and jump are at least 1", field="min_size")
+        self.cost = cost
+        self.min_size = max(min_size, cost.min_size)
+        self.jump = jump
+        self.n_samples = 0
+
+    def fit(self, signal: np.ndarray) -> VectorisedPelt:
+        self.cost.fit(signal)
+        self.n_samples = int(np.asarray(signal).shape[0])
+        return self
+
+    def predict(self, pen: float) -> list[int]:
+        """Segment ends of the optimal penalised partition (the last is the signal length)."""
+        if self.n_samples < 2 * self.min_size:
+            raise InputError("the signal is shorter than two segments", field="signal")
+        return sorted(end for _, end in self._seg(pen))
+
     def _seg(self, pen: float) -> dict[tuple[int, int], float]:
         cost = self.cost
-        if not isinstance(cost, SegmentCost):
-            return super()._seg(pen)
         n, min_size, jump = self.n_samples, self.min_size, self.jump
         segment_costs = _segment_costs(cost, n)
         ends = [k for k in range(0, n, jump) if k >= min_size] + [n]
@@ -108,5 +127,4 @@ def breakpoints(cost: SegmentCost, signal: np.ndarray, penalty: float, *, min_si
     length = int(np.asarray(signal).shape[0])
     if length < 2 * cost.min_size:
         return []
-    return VectorisedPelt(custom_cost=cost, min_size=cost.min_size, jump=jump).fit(
-        signal).predict(penalty)
+    return VectorisedPelt(cost, min_size=cost.min_size, jump=jump).fit(signal).predict(penalty)

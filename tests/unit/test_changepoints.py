@@ -20,15 +20,19 @@ from detectors.changepoints import (
     ChangepointConfig,
     EngagementChangepoint,
     GaussianGapCost,
+    GaussianMeanCost,
     MultinomialShareCost,
+    SegmentCost,
     ShareChangepoint,
     VectorisedPelt,
+    breakpoints,
     engagement_changepoints,
     engagement_gap,
     information_penalty,
     share_changepoints,
 )
 from detectors.changepoints import pelt as pelt_module
+from detectors.changepoints.base import SegmentTooShortError
 from detectors.errors import InputError
 
 ARMS = ["control", "cards"]
@@ -143,14 +147,40 @@ def test_gap_days_without_two_units_or_variance_get_no_weight() -> None:
     assert engagement_gap(stats, 0)[2, 1] > 0
 
 
+class AsRupturesCost(BaseCost):
+    """One of our costs behind ruptures' own ``BaseCost``, so ruptures' PELT can run it."""
+
+    model = "inrush_segment_cost"
+
+    def __init__(self, cost: SegmentCost) -> None:
+        self.inner = cost
+        self.min_size = cost.min_size
+
+    def fit(self, signal: np.ndarray) -> AsRupturesCost:
+        self.inner.fit(signal)
+        self.signal = self.inner.signal
+        return self
+
+    def error(self, start: int, end: int) -> float:
+        if end - start < self.min_size:
+            raise NotEnoughPoints
+        return self.inner.error(start, end)
+
+
 def test_costs_follow_the_ruptures_interface() -> None:
     cost = MultinomialShareCost(min_size=2)
-    assert isinstance(cost, BaseCost) and cost.model and cost.min_size == 2
+    assert cost.model and cost.min_size == 2
     counts = np.array([[10, 12], [11, 9], [30, 10], [28, 12]])
     cost.fit(MultinomialShareCost.signal_of(counts, np.full((4, 2), 0.5)))
-    with pytest.raises(NotEnoughPoints):
+    with pytest.raises(SegmentTooShortError):
         cost.error(1, 2)
     assert cost.error(0, 4) == pytest.approx(float(cost.errors(np.array([0]), 4)[0]))
+
+
+def test_pelt_rejects_a_signal_shorter_than_two_segments() -> None:
+    with pytest.raises(InputError):
+        VectorisedPelt(GaussianMeanCost(), min_size=3).fit(np.arange(5.0)).predict(1.0)
+    assert breakpoints(GaussianMeanCost(), np.arange(5.0), 1.0, min_size=3) == []
 
 
 @pytest.mark.parametrize(("min_size", "jump"), [(1, 1), (2, 1), (1, 2), (3, 2)])
@@ -170,9 +200,9 @@ def test_vectorised_pelt_equals_ruptures_pelt(min_size: int, jump: int, table: b
                                rng.uniform(0, 150, length)])
         for cost_type, signal in [(MultinomialShareCost, share), (GaussianGapCost, gap)]:
             penalty = float(rng.uniform(2.0, 25.0))
-            stock = rpt.Pelt(custom_cost=cost_type(min_size=min_size), min_size=min_size,
-                             jump=jump).fit(signal).predict(penalty)
-            ours = VectorisedPelt(custom_cost=cost_type(min_size=min_size), min_size=min_size,
+            stock = rpt.Pelt(custom_cost=AsRupturesCost(cost_type(min_size=min_size)),
+                             min_size=min_size, jump=jump).fit(signal).predict(penalty)
+            ours = VectorisedPelt(cost_type(min_size=min_size), min_size=min_size,
                                   jump=jump).fit(signal).predict(penalty)
             assert ours == stock
 
