@@ -36,8 +36,7 @@ def daily_series(table: ObservationTable, schedule: AllocationSchedule,
     totals = counts.sum(axis=1, keepdims=True)
     with np.errstate(divide="ignore", invalid="ignore"):
         shares = np.where(totals > 0, counts / np.where(totals > 0, totals, 1), np.nan)
-        means = {name: cube.sum(axis=2)[:, :, 1] / cube.sum(axis=2)[:, :, 0]
-                 for name, cube in table.metrics.items()}
+        means = {name: _daily_mean(cube) for name, cube in table.metrics.items()}
     severity: dict[str, str] = {}
     episode_day: dict[str, dict[str, Any]] = {}
     if diagnosis is not None:
@@ -68,6 +67,12 @@ def daily_series(table: ObservationTable, schedule: AllocationSchedule,
     } for s, source in enumerate(sources)]
     return {"arms": list(arms), "dates": day_labels, "days": days, "sources": by_source,
             "metrics": list(table.metrics)}
+
+
+def _daily_mean(cube: np.ndarray) -> np.ndarray:
+    """Entrants' mean per day and arm of a ``(days, arms, sources, stats)`` metric cube."""
+    daily = cube.sum(axis=2)
+    return daily[:, :, 1] / daily[:, :, 0]
 
 
 def _safe(value: float) -> float | None:

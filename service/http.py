@@ -3,23 +3,18 @@
 from __future__ import annotations
 
 import hashlib
-import json
 from typing import Any
 
 from starlette.datastructures import Headers
 from starlette.exceptions import HTTPException
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-from .jsonsafe import json_safe as json_safe  # re-exported for the routers
+from .jsonsafe import canonical_json as canonical_json  # re-exported for the routers
+from .jsonsafe import json_safe as json_safe
 from .problems import PROBLEM_MEDIA_TYPE, PROBLEM_TYPES
 
 CSV_MEDIA_TYPE = "text/csv"
 JSON_MEDIA_TYPE = "application/json"
-
-
-def canonical_json(document: Any) -> bytes:
-    return json.dumps(document, sort_keys=True, separators=(",", ":"),
-                      allow_nan=False).encode("utf-8")
 
 
 def entity_tag(document: Any) -> str:

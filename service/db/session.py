@@ -13,6 +13,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import msgspec
 from alembic import command
 from alembic.config import Config
 from fastapi import Request
@@ -20,6 +21,7 @@ from sqlalchemy import Engine, create_engine, event, text
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
+from ..jsonsafe import encode_json
 from ..request_budget import budget_spent, check_budget
 from .async_reads import AsyncReads
 
@@ -38,6 +40,12 @@ STATEMENT_TIMEOUT_MS = 30_000
 # instead of the operating system's two hours.
 _KEEPALIVES = {"keepalives": 1, "keepalives_idle": 30, "keepalives_interval": 10,
                "keepalives_count": 3}
+# JSON columns (diagnosis documents, series) are written and read by msgspec: the documents
+# of wide experiments are megabytes, and the standard library's codec was a large share of
+# each upload's time (benchmarks/wide_bench.py).
+_JSON_CODEC: dict[str, Any] = {
+    "json_serializer": lambda value: encode_json(value).decode("utf-8"),
+    "json_deserializer": msgspec.json.decode}
 _NO_STATEMENT_TIMEOUT = "inrush_no_statement_timeout"
 _SQLITE_DEADLINE = "inrush_statement_deadline"
 
@@ -67,7 +75,7 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
     parsed = make_url(url)
     if parsed.get_backend_name() != "sqlite":
         engine = create_engine(url, pool_pre_ping=True, pool_size=pool_size,
-                               max_overflow=max_overflow, hide_parameters=True,
+                               max_overflow=max_overflow, hide_parameters=True, **_JSON_CODEC,
                                connect_args={"connect_timeout": connect_timeout_s,
                                              **_KEEPALIVES})
         if respect_budgets:
@@ -85,7 +93,7 @@ def make_engine(url: str, *, busy_timeout_ms: int = 30_000, pool_size: int = 12,
     # hide_parameters: error messages and logs never show bound values (webhook secrets...).
     pooled = {} if database in ("", ":memory:") else {"pool_size": pool_size,
                                                          "max_overflow": max_overflow}
-    engine = create_engine(url, hide_parameters=True, **pooled,
+    engine = create_engine(url, hide_parameters=True, **pooled, **_JSON_CODEC,
                            connect_args={"check_same_thread": False,
                                          "timeout": busy_timeout_ms / 1000})
 
