@@ -47,6 +47,10 @@ def skewed_day(date: dt.date, units: float, **kwargs: Any) -> dict[str, Any]:
         "campaigns": ["autumn-trails"]}, **kwargs)
 
 
+# These tests start from revision 0003 and migrate forward themselves.
+pytestmark = pytest.mark.empty_database
+
+
 @pytest.fixture
 def database(database_url: str) -> Iterator[Database]:
     db = Database(database_url)

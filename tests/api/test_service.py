@@ -9,6 +9,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
+import pytest
 from alembic.autogenerate import compare_metadata
 from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
@@ -92,6 +93,7 @@ def test_sqlite_connections_are_configured(app: Any, anonymous: Any, database_ur
         assert connection.execute(text("PRAGMA busy_timeout")).scalar() == 30000
 
 
+@pytest.mark.empty_database
 def test_cli_db_upgrade_on_an_empty_database(database_url: str) -> None:
     env = {**os.environ, "INRUSH_DATABASE_URL": database_url}
     command = [sys.executable, "-m", "service.cli", "db"]
