@@ -232,11 +232,10 @@ NOTES = [
     "(per-source fits, PELT on engagement gaps, the anytime-valid tests) the rest. Each of "
     "these is linear in the experiment's cells. On SQLite a small upload to another "
     "experiment during a wide re-upload waits only for the re-upload's short write "
-    "transactions (the upsert, then storing the result): the diagnosis holds no lock, but "
-    "both requests share the one worker process and its interpreter lock, which is most of "
-    "the difference between the two columns. Runs made while other work shared the 2 cores "
-    "are slower than on an idle machine by a factor the load average indicates; compare "
-    "sizes within one run.",
+    "transactions (the upsert, then storing the result) and shares the one worker process "
+    "and its interpreter lock with it; the diagnosis itself holds no lock. Runs made while "
+    "other work shared the 2 cores are slower than on an idle machine by a factor the load "
+    "average indicates; compare sizes within one run.",
 ]
 
 _COLUMNS = (("reupload", "one-day re-upload"), ("other_upload_alone", "other exp. upload"),
