@@ -73,9 +73,7 @@ def build_query(config: PullConfig, cutoff: dt.datetime, dialect: Dialect,
   FROM {_id(relations.get(EXPOSURES_VIEW, EXPOSURES_VIEW))}
   WHERE {_id(ex.unit)} IS NOT NULL AND {_id(ex.arm)} IS NOT NULL
     AND INRUSH_INSTANT({_id(ex.time)}) < {cut})""",
-        """units AS (
-  SELECT u, MIN(t) AS t0, MIN(a) AS a_lo, MAX(a) AS a_hi, INRUSH_FIRST(s, t) AS s
-  FROM e GROUP BY u)""",
+        _units(dialect),
         f"""clean AS (
   SELECT u, t0, CASE WHEN a_lo = a_hi THEN a_lo END AS a, s,
          CAST(INRUSH_LOCAL(t0, {_lit(ex.timezone)}) AS DATE) AS d
@@ -115,6 +113,26 @@ def build_query(config: PullConfig, cutoff: dt.datetime, dialect: Dialect,
     return CubeQuery(rendered.sql(dialect=dialect), tuple(m.name for m in config.metrics))
 
 
+def _units(dialect: Dialect) -> str:
+    """One row per unit: first instant, lowest and highest arm, source of the first exposure.
+
+    DuckDB and Spark order structs field by field, so the minimum of ``(t, s)`` is the first
+    exposure with ties going to the smallest source, in one aggregate. That is what makes the
+    tie-break cheap: an ``ARG_MIN(s, (t, s))`` beside ``MIN(t)`` cost DuckDB 1.7x the CPU of
+    the whole query at 100 million rows (benchmarks/pull_bench.py). PostgreSQL has no minimum
+    of a row value, so it takes the first element of the ordered array.
+    """
+    if dialect == "postgres":
+        return """units AS (
+  SELECT u, MIN(t) AS t0, MIN(a) AS a_lo, MAX(a) AS a_hi, INRUSH_FIRST(s, t) AS s
+  FROM e GROUP BY u)"""
+    return """units AS (
+  SELECT u, first_seen.t AS t0, a_lo, a_hi, first_seen.s AS s
+  FROM (SELECT u, MIN(STRUCT_PACK(t := t, s := s)) AS first_seen, MIN(a) AS a_lo,
+               MAX(a) AS a_hi
+        FROM e GROUP BY u) AS per_unit)"""
+
+
 def _engine_function(node: exp.Expression, dialect: Dialect) -> exp.Expression:
     """The three things SQL spells differently per engine."""
     if not isinstance(node, exp.Anonymous):
@@ -133,12 +151,6 @@ def _engine_function(node: exp.Expression, dialect: Dialect) -> exp.Expression:
         return exp.func("TIMEZONE", zone, instant, dialect=dialect)
     if name == "INRUSH_FIRST":  # value at the earliest time, ties to the smallest value
         value, time = args
-        if dialect == "duckdb":
-            return exp.func("ARG_MIN", value, exp.Tuple(expressions=[time, value.copy()]),
-                            dialect="duckdb")
-        if dialect == "spark":
-            return exp.func("MIN_BY", value, exp.func("STRUCT", time, value.copy(),
-                                                       dialect="spark"), dialect="spark")
         ordered = sqlglot.parse_one(
             f"(ARRAY_AGG({value.sql('postgres')} ORDER BY {time.sql('postgres')}, "
             f"{value.sql('postgres')}))[1]", read="postgres")
