@@ -51,11 +51,27 @@ class CubeQuery:
     metrics: tuple[str, ...]  # metric names, in the order of their output columns
 
 
+def naive_timestamp(type_name: str, dialect: Dialect) -> bool:
+    """Whether the engine's column type is a timestamp without time zone (read as UTC)."""
+    lowered = type_name.lower()
+    if dialect == "spark":  # Spark's TIMESTAMP is an instant; TIMESTAMP_NTZ is wall-clock
+        return lowered == "timestamp_ntz"
+    if dialect == "postgres":
+        return lowered in ("timestamp", "timestamp without time zone")
+    return lowered.startswith("timestamp") and "time zone" not in lowered \
+        and lowered != "timestamptz"
+
+
 def build_query(config: PullConfig, cutoff: dt.datetime, dialect: Dialect,
-                relations: Mapping[str, str] | None = None) -> CubeQuery:
+                relations: Mapping[str, str] | None = None,
+                naive_exposure_time: bool = False) -> CubeQuery:
     """The cube query for ``dialect``. ``cutoff`` is a UTC instant (naive or aware);
     ``relations`` maps :data:`EXPOSURES_VIEW` and each :func:`metric_view` to the table or
-    view the engine reads it from (default: those names).
+    view the engine reads it from (default: those names). ``naive_exposure_time`` says the
+    exposures' time column has no time zone (see :func:`naive_timestamp`): the cutoff is
+    then compared as UTC wall-clock time with the column as it is, which lets the engine
+    filter while it scans instead of converting every row first (on DuckDB the conversion in
+    the filter cost about 0.7 CPU seconds per 10 million rows).
 
     Output columns: ``d`` (date), ``a`` (arm, NULL for crossed units), ``s`` (source),
     ``entered``, then per metric ``k``: ``n_k, sum_k, sumsq_k, var_k, whole_k``.
@@ -64,6 +80,8 @@ def build_query(config: PullConfig, cutoff: dt.datetime, dialect: Dialect,
     relations = relations or {}
     stamp = cutoff.replace(tzinfo=None).isoformat(sep=" ", timespec="microseconds")
     cut = f"INRUSH_INSTANT({_lit(stamp)})"
+    before_cut = (f"{_id(ex.time)} < INRUSH_WALL_CLOCK({_lit(stamp)})" if naive_exposure_time
+                  else f"INRUSH_INSTANT({_id(ex.time)}) < {cut}")
     source = (f"COALESCE(CAST({_id(ex.source)} AS TEXT), {_lit(UNATTRIBUTED)})"
               if ex.source else _lit(UNATTRIBUTED))
     ctes = [
@@ -72,7 +90,7 @@ def build_query(config: PullConfig, cutoff: dt.datetime, dialect: Dialect,
          INRUSH_INSTANT({_id(ex.time)}) AS t, {source} AS s
   FROM {_id(relations.get(EXPOSURES_VIEW, EXPOSURES_VIEW))}
   WHERE {_id(ex.unit)} IS NOT NULL AND {_id(ex.arm)} IS NOT NULL
-    AND INRUSH_INSTANT({_id(ex.time)}) < {cut})""",
+    AND {before_cut})""",
         _units(dialect),
         f"""clean AS (
   SELECT u, t0, CASE WHEN a_lo = a_hi THEN a_lo END AS a, s,
@@ -134,7 +152,7 @@ def _units(dialect: Dialect) -> str:
 
 
 def _engine_function(node: exp.Expression, dialect: Dialect) -> exp.Expression:
-    """The three things SQL spells differently per engine."""
+    """The things SQL spells differently per engine."""
     if not isinstance(node, exp.Anonymous):
         return node
     name = node.name.upper()
@@ -143,6 +161,9 @@ def _engine_function(node: exp.Expression, dialect: Dialect) -> exp.Expression:
         # Each engine's session time zone is UTC (the adapters set it), so these casts read a
         # naive timestamp as UTC and leave an aware one the same instant.
         kind = "TIMESTAMP" if dialect == "spark" else "TIMESTAMPTZ"
+        return exp.cast(args[0], kind, dialect=dialect)
+    if name == "INRUSH_WALL_CLOCK":  # a UTC wall-clock literal, to compare naive columns
+        kind = "TIMESTAMP_NTZ" if dialect == "spark" else "TIMESTAMP"
         return exp.cast(args[0], kind, dialect=dialect)
     if name == "INRUSH_LOCAL":  # wall-clock time of an instant in a zone
         instant, zone = args
