@@ -102,7 +102,12 @@ def build_query(config: PullConfig, cutoff: dt.datetime, dialect: Dialect,
     columns: list[str] = []
     for k, metric in enumerate(config.metrics):
         window = f"c.t0 + INTERVAL {metric.window_days} DAY"
-        mature = f"c.a IS NOT NULL AND {window} <= {cut}"
+        # The window closed by the cutoff, as t0 <= cutoff - window: a constant to compare
+        # with, instead of date arithmetic on every unit (the sessions are in UTC, where a
+        # day is always 24 hours, so the two agree exactly).
+        opened_by = (cutoff.replace(tzinfo=None) - dt.timedelta(days=metric.window_days)
+                     ).isoformat(sep=" ", timespec="microseconds")
+        mature = f"c.a IS NOT NULL AND c.t0 <= INRUSH_INSTANT({_lit(opened_by)})"
         value = f"CAST({_id(metric.value)} AS DOUBLE)" if metric.value else "1"
         events = _id(relations.get(metric_view(k), metric_view(k)))
         ctes.append(f"""m{k} AS (
