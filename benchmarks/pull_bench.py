@@ -269,6 +269,10 @@ def main() -> None:
         for name, kind, folder in wanted:
             if f"{name}:{folder.name}" not in done:
                 runs.setdefault(name, []).append(_run(kind, folder))
+    # The load when the measurements were made, not when a report was written from them.
+    if runs:
+        done["load_average"] = figures["load_average"]
+    figures["load_average"] = done.get("load_average", figures["load_average"])
     for name, _kind, folder in wanted:
         key = f"{name}:{folder.name}"
         if name in runs:
@@ -349,8 +353,9 @@ def write(figures: dict[str, Any]) -> None:
               + ("; Spark found the same cube as DuckDB at its size" if "spark_mid" in figures
                  else "") + ".", "",
               "**Against the hand-written query.** "
-              + ("The goal is met in CPU time, the steadier figure. " if cpu_hand <= 1.3
-                 else "The goal is missed in CPU time. ")
+              + ("The goal is met in wall and CPU time. " if max(cpu_hand, wall_hand) <= 1.3
+                 else "The goal is met in CPU time, the steadier figure, not in wall time. "
+                 if cpu_hand <= 1.3 else "The goal is missed in CPU time. ")
               + "The pull's deterministic tie-break at equal first instants was the gap: it "
               "took MIN(time) beside ARG_MIN(source, (time, source)), whose struct key DuckDB "
               "compares field by field on every row. Measured on these files the same day "
@@ -361,9 +366,10 @@ def write(figures: dict[str, Any]) -> None:
               "together, and compares each unit's start with a constant (cutoff - window) to "
               "decide maturity instead of adding an interval per unit (about 0.8 of 5 CPU s "
               "at 10 million rows; the hand-written query still adds the interval, as one "
-              "would write it). The checks of the configured columns took under 0.1 s, and "
-              "the variance and whole-number aggregates over the units' values about 0.01 s "
-              "at 10 million rows. Where the rest goes (EXPLAIN "
+              "would write it). The checks of the configured columns took under 0.1 s; the "
+              "final group-by with the variance and whole-number aggregates took 0.30 s of "
+              "operator time at 10 million rows, the hand-written one without them 0.29 s. "
+              "Where the rest goes (EXPLAIN "
               "ANALYZE at 10 million rows): about 60% of the operator time is the group-by "
               "over units (4 million at that size, 40 million here), 10% the join of the "
               "order events to their units' windows, 8% each unit's date in the configured "
