@@ -141,9 +141,10 @@ def _units(dialect: Dialect) -> str:
 
     DuckDB and Spark order structs field by field, so the minimum of ``(t, s)`` is the first
     exposure with ties going to the smallest source, in one aggregate. That is what makes the
-    tie-break cheap: with ``ARG_MIN(s, (t, s))`` beside ``MIN(t)`` the whole query took 1.7x
-    the CPU time on DuckDB at 100 million rows (benchmarks/pull_bench.py). PostgreSQL has no
-    minimum of a row value, so it takes the first element of the ordered array.
+    tie-break cheap: with ``ARG_MIN(s, (t, s))`` beside ``MIN(t)`` the whole query took 2.2x
+    the CPU time on DuckDB at 100 million rows (98 s against 44.5 s, benchmarks/RESULTS.md).
+    PostgreSQL has no minimum of a row value, so it takes the first element of the ordered
+    array.
     """
     if dialect == "postgres":
         return """units AS (
