@@ -12,7 +12,7 @@ from detectors.errors import InputError, Problem
 from .config import PullConfig
 from .cube import Cube, cube_from_cells
 from .engines import Engine, bind_relations, open_engine
-from .query import EXPOSURES_VIEW, build_query, metric_view
+from .query import EXPOSURES_VIEW, build_query, metric_view, naive_timestamp
 
 
 @dataclass(frozen=True)
@@ -60,8 +60,9 @@ def run_pull(config: PullConfig, as_of: dt.date) -> PullResult:
     cutoff = cutoff_for(config, as_of)
     with open_engine(config) as engine:
         relations = bind_relations(engine, config)
-        check_columns(engine, config, relations)
-        query = build_query(config, cutoff, engine.dialect, relations)
+        exposure_types = check_columns(engine, config, relations)
+        naive = naive_timestamp(exposure_types[config.exposures.time], engine.dialect)
+        query = build_query(config, cutoff, engine.dialect, relations, naive)
         cells = engine.fetch(query.sql)
     cube = cube_from_cells(cells, query.metrics)
     if not cube.rows:
@@ -92,8 +93,10 @@ def _kind(type_name: str) -> str:
     return lowered
 
 
-def check_columns(engine: Engine, config: PullConfig, relations: dict[str, str]) -> None:
-    """Every configured column exists with a usable type; all problems at once."""
+def check_columns(engine: Engine, config: PullConfig, relations: dict[str, str]
+                  ) -> dict[str, str]:
+    """Every configured column exists with a usable type; all problems at once. Returns the
+    exposures' column types."""
     problems: list[Problem] = []
     ex = config.exposures
     exposure_types = engine.column_types(relations[EXPOSURES_VIEW], "exposures")
@@ -117,6 +120,7 @@ def check_columns(engine: Engine, config: PullConfig, relations: dict[str, str])
                                         "compare equal"))
     if problems:
         raise InputError(problems)
+    return exposure_types
 
 
 def _missing(key: str, types: dict[str, str], wanted: list[tuple[str, str, str | None]]

@@ -38,6 +38,21 @@ def files(tmp_path_factory: pytest.TempPathFactory,
     return folder
 
 
+@pytest.fixture(scope="module")
+def naive_files(files: Path) -> Path:
+    """The exposures again with timestamps without time zone (UTC wall-clock), as many logs
+    store them: the pull then compares the cutoff with the column as it is."""
+    import duckdb
+
+    with duckdb.connect() as connection:
+        connection.execute("SET TimeZone = 'UTC'")
+        connection.execute(
+            "COPY (SELECT user_id, arm, CAST(exposed_at AS TIMESTAMP) AS exposed_at, "
+            f"entry_source FROM read_parquet('{files}/exposures/*.parquet')) "
+            f"TO '{files}/naive-exposures.parquet' (FORMAT parquet)")
+    return files
+
+
 def _pull(url: str, folder: Path | None, exposures: str, orders: str) -> PullResult:
     text = CONFIG.format(url=url, exposures=exposures, orders=orders)
     return run_pull(parse_config(text, base=folder), AS_OF)
@@ -62,6 +77,18 @@ def test_duckdb_on_parquet_files(files: Path, data: tuple[pd.DataFrame, pd.DataF
     # A (date, source) where every unit was crossed has no row, only a crossed count.
     assert not any(r["source"] == "partner" for r in result.cube.rows)
     assert any(c.source == "partner" for c in result.cube.crossed)
+
+
+def test_duckdb_naive_exposure_times(naive_files: Path,
+                                     data: tuple[pd.DataFrame, pd.DataFrame]) -> None:
+    import duckdb
+
+    with duckdb.connect() as connection:
+        kind = connection.execute("SELECT typeof(exposed_at) FROM "
+                                  f"'{naive_files}/naive-exposures.parquet' LIMIT 1").fetchone()
+    assert kind == ("TIMESTAMP",)
+    _check(_pull("duckdb://", naive_files, 'files = "naive-exposures.parquet"',
+                 'files = "orders.parquet"'), data)
 
 
 def test_duckdb_database_table(tmp_path: Path, files: Path,
@@ -109,6 +136,9 @@ def postgres_url(data: tuple[pd.DataFrame, pd.DataFrame]) -> Iterator[str]:
             frame.to_csv(buffer, index=False, header=False, date_format="%Y-%m-%d %H:%M:%S.%f%z")
             with connection.cursor().copy(f"COPY {table} FROM STDIN (FORMAT csv)") as copy:
                 copy.write(buffer.getvalue())
+        connection.execute("CREATE TABLE logs.naive_exposures AS SELECT user_id, arm, "
+                           "exposed_at AT TIME ZONE 'UTC' AS exposed_at, entry_source "
+                           "FROM logs.exposures")
         yield url
 
 
@@ -154,6 +184,19 @@ def test_spark_on_parquet_files(spark: None, files: Path,
         [(r["date"], r["arm"], r["source"], r["entered"]) for r in duck.cube.rows]
     assert [r["metrics"]["visits_2d"] for r in result.cube.rows] == \
         [r["metrics"]["visits_2d"] for r in duck.cube.rows]
+
+
+@pytest.mark.postgres
+def test_postgres_naive_exposure_times(postgres_url: str,
+                                       data: tuple[pd.DataFrame, pd.DataFrame]) -> None:
+    _check(_pull(postgres_url, None, 'table = "logs.naive_exposures"', 'table = "orders"'),
+           data)
+
+
+def test_spark_naive_exposure_times(spark: None, naive_files: Path,
+                                    data: tuple[pd.DataFrame, pd.DataFrame]) -> None:
+    _check(_pull("spark://local[2]", naive_files, 'files = "naive-exposures.parquet"',
+                 'files = "orders.parquet"'), data)
 
 
 @pytest.mark.postgres
