@@ -36,7 +36,9 @@ class PullRunIn(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     as_of: dt.date
-    written: int | None = Field(None, ge=0)
+    # The stored column is a 32-bit integer; a cube never has 2^31 rows.
+    written: int | None = Field(None, ge=0, le=2**31 - 1,
+                                description="observation rows the run wrote")
     report: dict[str, Any] = Field(description="the report `inrush pull --json` prints")
 
 

@@ -94,3 +94,19 @@ def test_failed_run_is_recorded_with_the_key(client: TestClient, folder: Path,
     [run] = client.get(url).json()["runs"]
     assert run["state"] == FAILED and "exposures.files" in run["error"]
     assert "failed" in client.get(f"/experiments/{EXPERIMENT['id']}").text
+
+
+def test_a_reported_run_past_the_stored_range_is_refused_and_nothing_is_kept(
+        client: TestClient, counts: Callable[[], dict[str, int]]) -> None:
+    # Found by the schemathesis fuzz run on PostgreSQL: 2^57 rows written reached the 32-bit
+    # column and answered 500.
+    assert client.post("/v1/experiments", json=EXPERIMENT).status_code == 201
+    url = f"/v1/experiments/{EXPERIMENT['id']}/pull/runs"
+    before = counts()
+    body = assert_problem(client.post(url, json={"as_of": "2026-03-10", "written": 2**57,
+                                                 "report": {}}), 422)
+    assert [e["field"] for e in body["errors"]] == ["written"]
+    assert counts() == before
+    accepted = client.post(url, json={"as_of": "2026-03-10", "written": 2**31 - 1,
+                                      "report": {}})
+    assert accepted.status_code in (200, 201), accepted.text
