@@ -6,7 +6,10 @@ anytime-valid whole-period and per-source tests). This module only *describes* w
 
 1. Localise. Days inside flagged windows, and days of share segments (PELT, Killick, Fearnhead
    & Eckley 2012) whose counts are clearly off plan, form runs of consecutive days (a gap of one
-   day is bridged). A run becomes an episode only if some deciding evidence points at it.
+   day is bridged). A run becomes an episode only if some deciding evidence points at it. A
+   source's whole-period test points at the segment of days its own counts left the plan on
+   (:func:`source_segment`), so a campaign found only through its source is dated, not read as
+   a skew from the first day.
 2. Classify the shape by which quantity did *not* move (SRM cause taxonomy of Fabijan et al.,
    KDD 2019). Each arm's units are scaled by its planned weight (``c_k / p_k``, an estimate of
    the day's total) and compared with the same weekday outside any run. An inflow into arm k
@@ -21,13 +24,14 @@ anytime-valid whole-period and per-source tests). This module only *describes* w
 from __future__ import annotations
 
 import datetime as dt
+import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 import numpy as np
 
-from .changepoints import EngagementChangepoint, ShareChangepoint
+from .changepoints import EngagementChangepoint, MultinomialShareCost, ShareChangepoint
 from .data import UNATTRIBUTED, ObservationTable
 from .episodes import (
     ALLOCATION_STEP,
@@ -152,13 +156,13 @@ def find_episodes(table: ObservationTable, planned: np.ndarray, signals: Sequenc
             candidate[signal.days[0]:signal.days[1] + 1] = True
     candidate |= _off_plan_segments(counts, expected, table.dates, share_changes)
     runs = _runs(candidate)
-    _attach(runs, live, n_days, table)
+    first_active = int(np.flatnonzero(counts.sum(axis=1) > 0)[0])
+    _attach(runs, live, n_days, table, planned, first_active)
     runs = [r for r in runs if r.signals]
     runs = _merge_overlapping(runs)
     in_run = np.zeros(n_days, dtype=bool)
     for run in runs:
         in_run[run.first:run.last + 1] = True
-    first_active = int(np.flatnonzero(counts.sum(axis=1) > 0)[0])
     episodes = []
     for run in runs:
         episodes.append(_describe(run, table, counts, planned, expected, in_run, first_active,
@@ -198,11 +202,20 @@ def _runs(mask: np.ndarray, gap: int = 1) -> list[_Run]:
 
 
 def _attach(runs: list[_Run], signals: Sequence[Signal], n_days: int,
-            table: ObservationTable) -> None:
-    """Give each signal to the run it points at, opening runs where none does."""
+            table: ObservationTable, planned: np.ndarray, first_active: int) -> None:
+    """Give each signal to the run it points at, opening runs where none does. A source's
+    whole-period signal points at the days its off-plan traffic is found on
+    (:func:`source_segment`) unless they are most of the experiment."""
     for signal in sorted(signals, key=lambda s: s.days is None):
-        if signal.days is not None:
-            first, last = signal.days
+        days = signal.days
+        if days is None and signal.source is not None and signal.source in table.sources:
+            column = table.entered[:, :, table.sources.index(signal.source)].astype(float)
+            first, last = source_segment(column, planned)
+            steady = (first <= first_active + 2 and (last - first_active + 1)
+                      >= PERSISTENT_COVER * (n_days - first_active))
+            days = None if steady else (first, last)
+        if days is not None:
+            first, last = days
             touching = [r for r in runs if r.first <= last + 1 and first <= r.last + 1]
             if touching:
                 best = max(touching, key=lambda r: min(r.last, last) - max(r.first, first))
@@ -228,6 +241,45 @@ def _attach(runs: list[_Run], signals: Sequence[Signal], n_days: int,
         best = max(runs, key=lambda r: deviation[r.first:r.last + 1].sum())
         best.signals.append(signal)
     runs.sort(key=lambda r: r.first)
+
+
+def source_segment(column: np.ndarray, planned: np.ndarray) -> tuple[int, int]:
+    """The days ``[first, last]`` on which one source's arm counts left the plan.
+
+    ``column`` is the source's units per day and arm, ``planned`` the weights in force. Two
+    multinomial models of the days the source has units on are compared
+    (:class:`~detectors.changepoints.MultinomialShareCost`): one tilt of the plan over all of
+    them, against the plan outside one segment and a tilt inside it. The segment is taken when
+    it beats the single tilt by more than ``3 log(max(units, segments))`` (a BIC-like charge
+    for its two ends, strict enough that a steady skew with noise stays whole); among equally
+    good segments the shortest wins. Days without the source's units never extend the answer:
+    a campaign's own source that exists on two days is dated to those two days.
+
+    Example:
+        >>> column = np.array([[50, 50]] * 5 + [[50, 350], [60, 340]] + [[50, 50]] * 5)
+        >>> source_segment(column, np.full((12, 2), 0.5))
+        (5, 6)
+    """
+    column = np.asarray(column, float)
+    active = np.flatnonzero(column.sum(axis=1) > 0)
+    if active.size == 0:
+        return 0, column.shape[0] - 1
+    first, last = int(active[0]), int(active[-1])
+    cost = MultinomialShareCost().fit(MultinomialShareCost.signal_of(
+        column[first:last + 1], planned[first:last + 1]))
+    n = last - first + 1
+    starts, ends = np.triu_indices(n + 1, k=1)  # every segment [start, end) of the active span
+    with np.errstate(all="ignore"):
+        tilted = (cost.plan_errors(0, starts) + cost.errors(starts, ends)
+                  + cost.plan_errors(ends, n))
+    one_tilt = float(cost.errors(np.array([0]), n)[0])
+    best = float(tilted.min())
+    penalty = 3.0 * math.log(max(float(column.sum()), float(starts.size), 2.0))
+    if not one_tilt - best > penalty:
+        return first, last
+    near_best = np.flatnonzero(tilted <= best + 1e-9 * max(abs(best), 1.0))
+    chosen = near_best[np.argmin(ends[near_best] - starts[near_best])]
+    return first + int(starts[chosen]), first + int(ends[chosen]) - 1
 
 
 def _merge_overlapping(runs: list[_Run]) -> list[_Run]:

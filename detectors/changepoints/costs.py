@@ -88,6 +88,11 @@ class MultinomialShareCost(SegmentCost):
             loglik -= units * np.log(np.where(units > 0, normaliser, 1.0))
         return -2.0 * loglik
 
+    def plan_errors(self, starts: np.ndarray, ends: np.ndarray | int) -> np.ndarray:
+        """Twice the negative log-likelihood of the segments at the planned weights (no tilt),
+        on the scale of :meth:`errors`."""
+        return -2.0 * (self._cum_plan_loglik[ends] - self._cum_plan_loglik[starts])
+
     def ratios(self, start: int, end: int) -> np.ndarray:
         """Observed over planned units per arm in ``[start, end)`` (the tilt ``r``)."""
         observed = self._cum_observed[:, end] - self._cum_observed[:, start]
