@@ -414,19 +414,27 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
     persistent = run.whole_period or (
         first <= first_active + 2
         and (last - first_active + 1) >= PERSISTENT_COVER * (n_days - first_active))
+    # Found only by per-source tests: the skew lives in those sources, which the arms' totals
+    # may not show (the other sources dilute it), so they are what is counted and described.
+    skewed_sources = sorted({s.source for s in run.signals if s.source in sources})
+    source_only = bool(skewed_sources) and all(s.kind == "skewed_source" for s in run.signals)
+    in_scope = np.isin(np.asarray(sources, dtype=object), skewed_sources) if source_only \
+        else np.ones(len(sources), dtype=bool)
     if persistent:
         # Steady from the first day: the episode is the whole period so far.
         first, last = first_active, n_days - 1
         start, end = dates[first].item(), dates[last].item()
         span = np.arange(first, last + 1)
-        relative = ((counts[span] - expected[span]).sum(axis=0)
-                    / np.maximum(expected[span].sum(axis=0), 1e-12))
+        scoped = table.entered[span][:, :, in_scope].sum(axis=2).astype(float)
+        scoped_expected = scoped.sum(axis=1, keepdims=True) * planned[span]
+        relative = ((scoped - scoped_expected).sum(axis=0)
+                    / np.maximum(scoped_expected.sum(axis=0), 1e-12))
         shape, arm = PERSISTENT, int(np.argmax(relative))
     else:
         shape, arm = classify(counts, planned, first, last, in_run,
                               near_allocation_change=near_change)
     span = slice(first, last + 1)
-    cell_units = episode_units(table.entered[span], planned[span], arm, shape)
+    cell_units = episode_units(table.entered[span], planned[span], arm, shape) * in_scope
     daily_units = cell_units.sum(axis=1)
     total = float(daily_units.sum())
     daily = tuple(EpisodeDay(dates[first + i].item(), float(u)) for i, u in enumerate(daily_units))
@@ -450,17 +458,21 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
     severity = "alert" if any(s.severity == "alert" for s in signals) else "watch"
     observed_w = planned_w = None
     if shape in (ALLOCATION_STEP, PERSISTENT):
-        observed_w = dict(zip(arms, (counts[span].sum(axis=0) / max(counts[span].sum(), 1.0))
+        scoped = (table.entered[span][:, :, in_scope].sum(axis=2).astype(float)
+                  if shape == PERSISTENT else counts[span])
+        scoped_expected = scoped.sum(axis=1, keepdims=True) * planned[span]
+        observed_w = dict(zip(arms, (scoped.sum(axis=0) / max(scoped.sum(), 1.0))
                               .tolist(), strict=True))
-        planned_w = dict(zip(arms, (expected[span].sum(axis=0) / max(counts[span].sum(), 1.0))
+        planned_w = dict(zip(arms, (scoped_expected.sum(axis=0) / max(scoped.sum(), 1.0))
                              .tolist(), strict=True))
+    through = tuple(skewed_sources) if source_only and shape == PERSISTENT else ()
     impacts: Mapping[str, MetricImpact] = impact(cells, arms[arm]) if impact else {}
     measured = [i.in_se for i in impacts.values() if i.in_se is not None]
     material = not measured or max(measured) >= materiality
     context = _context(engagement, start, end)
     arm_name = arms[arm]
     summary = _summary(shape, arm_name, start, end, total, contributions, named_campaigns,
-                       observed_w, planned_w, table.arms)
+                       observed_w, planned_w, table.arms, through)
     meaning = _units_meaning(shape, arm_name, len(arms))
     evidence = tuple(Evidence(s.kind, s.key, s.severity or "watch", s.title, dict(s.detail))
                      for s in signals)
@@ -470,7 +482,8 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
         severity=severity if material else "watch", material=material,
         p_value=float(deciding.p_value), detected_by=tuple(dict.fromkeys(s.kind for s in signals)),
         summary=summary, units_meaning=meaning,
-        advice=shape_advice(shape, arm_name, main, named_campaigns, observed_w, planned_w),
+        advice=shape_advice(shape, arm_name, main, named_campaigns, observed_w, planned_w,
+                            through),
         evidence=evidence, impact=impacts, observed_weights=observed_w,
         planned_weights=planned_w, context=context, ongoing=last == n_days - 1,
         alert_level=deciding.alert_level)
@@ -521,7 +534,7 @@ def _span(start: dt.date, end: dt.date) -> str:
 def _summary(shape: str, arm: str, start: dt.date, end: dt.date, units: float,
              sources: Sequence[SourceContribution], campaigns: Sequence[str],
              observed: Mapping[str, float] | None, planned: Mapping[str, float] | None,
-             arms: Sequence[str]) -> str:
+             arms: Sequence[str], through: Sequence[str] = ()) -> str:
     top = sources[0] if sources else None
     via = (f", {100 * top.share:.0f}% of it through {top.source}" if top else "")
     explained = (f"; explained by the registered campaign {' and '.join(campaigns)}"
@@ -540,9 +553,10 @@ def _summary(shape: str, arm: str, start: dt.date, end: dt.date, units: float,
                 + f" the arms' shares follow about {_weights(observed, arms)} instead of the "
                 f"declared {_weights(planned, arms)} (about {units:+,.0f} units into {arm} "
                 "taken from the other arms).")
-    return (f"From the first day the arms' shares sit at about {_weights(observed, arms)} "
-            f"instead of the declared {_weights(planned, arms)} (about {units:+,.0f} units "
-            f"into {arm} so far).")
+    whose = (f"units entering through {' and '.join(through)} are split at about"
+             if through else "the arms' shares sit at about")
+    return (f"From the first day {whose} {_weights(observed, arms)} instead of the declared "
+            f"{_weights(planned, arms)} (about {units:+,.0f} units into {arm} so far).")
 
 
 def _units_meaning(shape: str, arm: str, n_arms: int) -> str:
@@ -564,9 +578,10 @@ CAMPAIGN_DESIGN_ADVICE = (
 
 
 def shape_advice(shape: str, arm: str, main_sources: Sequence[str], campaigns: Sequence[str],
-                 observed: Mapping[str, float] | None, planned: Mapping[str, float] | None
-                 ) -> tuple[str, ...]:
-    """What to check for each shape, after the SRM cause taxonomy of Fabijan et al. (KDD 2019)."""
+                 observed: Mapping[str, float] | None, planned: Mapping[str, float] | None,
+                 through: Sequence[str] = ()) -> tuple[str, ...]:
+    """What to check for each shape, after the SRM cause taxonomy of Fabijan et al. (KDD 2019).
+    ``through``: for a persistent skew seen only within some entry sources, those sources."""
     labelled = [s for s in main_sources if s not in ORGANIC_SOURCES]
     if shape == INFLOW:
         advice = [f"Until the extra units in {arm} are explained, the effect estimate is not "
@@ -589,6 +604,14 @@ def shape_advice(shape: str, arm: str, main_sources: Sequence[str], campaigns: S
                 "purpose, add the step to the allocation schedule; units that entered before "
                 "and after a ramp step are not comparable without accounting for the time of "
                 "entry.",)
+    if through:
+        named = " and ".join(through)
+        return (f"Units entering through {named} are assigned or logged unevenly from the "
+                f"start: observed about {_weights(observed, list(observed or {}))} against the "
+                f"declared {_weights(planned, list(planned or {}))} within that traffic. Check "
+                "what is particular to it: a landing page, app version or redirect that assigns, "
+                "exposes or logs only some arms, or filtering that treats its units "
+                "differently; do not read the effect until the cause is found.",)
     return ("The declared weights look wrong or units are assigned or logged unevenly from the "
             f"start: observed about {_weights(observed, list(observed or {}))} against the "
             f"declared {_weights(planned, list(planned or {}))}. Check the assignment "

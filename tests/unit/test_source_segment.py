@@ -11,13 +11,14 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pandas as pd
 import pytest
 from scipy import stats
 
 from benchmarks.detection import Task, run_task
 from benchmarks.simulate import Inflow, Scenario, simulate
-from detectors import diagnose
-from detectors.episode_finder import source_segment
+from detectors import ObservationTable, diagnose
+from detectors.episode_finder import Signal, find_episodes, source_segment
 
 PLAN = np.array([0.5, 0.5])
 
@@ -115,3 +116,24 @@ def test_the_detection_benchmark_case_that_was_read_as_persistent() -> None:
     outcome = run_task(Task("ref_labeled", 49))
     assert outcome.final_top_source == outcome.inflow_label == "reactivation_email"
     assert set(outcome.final_alert_days) == set(outcome.inflow_days)
+
+
+def test_a_steady_skew_within_one_source_is_described_and_counted_in_that_source() -> None:
+    # Invented traffic: organic on plan, app_v2 split 60/40 on every day, too small to move the
+    # arms' totals; only the per-source test sees it (a whole-period signal naming app_v2).
+    days = pd.date_range("2026-03-01", periods=21).strftime("%Y-%m-%d")
+    rows = pd.DataFrame(
+        [{"date": d, "arm": arm, "source": source, "entered": units}
+         for d in days
+         for source, split in (("organic", (5000, 5000)), ("app_v2", (240, 360)))
+         for arm, units in zip(("control", "cards"), split, strict=True)])
+    table = ObservationTable.from_frame(rows, ["control", "cards"])
+    signal = Signal("skewed_source", "app_v2", 1e-12, 0.0005, 0.01, None,
+                    "Source app_v2 does not follow the allocation", {}, source="app_v2")
+    [episode] = find_episodes(table, np.full((21, 2), 0.5), [signal])
+    assert (episode.shape, episode.arm) == ("persistent", "cards")
+    assert {cell.source for cell in episode.cells} == {"app_v2"}
+    assert episode.units == pytest.approx(21 * 60)  # 360 - 0.5 * 600 a day, app_v2 alone
+    assert episode.observed_weights == pytest.approx({"control": 0.4, "cards": 0.6})
+    assert "through app_v2" in episode.summary and "app_v2" in episode.advice[0]
+    assert "declared weights look wrong" not in episode.advice[0]
