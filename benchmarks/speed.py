@@ -22,7 +22,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special, stats
 
 from detectors import diagnose
 from detectors.srm import daily_srm, scan_windows
@@ -76,12 +76,18 @@ def baseline_loop(frame: pd.DataFrame, arms: tuple[str, ...], weights: np.ndarra
     for day in days:
         observed = daily.loc[day].to_numpy(float)
         daily_p.append(stats.chisquare(observed, observed.sum() * weights).pvalue)
-    window_p = []
+    # Each window's p-value adjusted by the scan's lifetime spending: a window ending on day t
+    # (1-based) is tested at alpha * gamma(t) / min(max_window, t), with
+    # gamma(t) = (t + 6)^-1.5 / zeta(1.5, 7) (detectors.srm's module docstring).
+    normaliser = float(special.zeta(1.5, 7))
+    window_adjusted = []
     for length in range(1, max_window + 1):
         for start in range(len(days) - length + 1):
             observed = daily.iloc[start:start + length].sum().to_numpy(float)
-            window_p.append(stats.chisquare(observed, observed.sum() * weights).pvalue)
-    window_adjusted = _holm(np.array(window_p))
+            p_value = stats.chisquare(observed, observed.sum() * weights).pvalue
+            end = start + length
+            share = (end + 6) ** -1.5 / normaliser
+            window_adjusted.append(min(1.0, p_value * min(max_window, end) / share))
     source_p = {}
     for source, rows in frame.groupby("source"):
         observed = rows.groupby("arm")["entered"].sum().reindex(list(arms), fill_value=0)
@@ -96,7 +102,7 @@ def baseline_loop(frame: pd.DataFrame, arms: tuple[str, ...], weights: np.ndarra
         observed = rows.set_index("arm")["entered"].reindex(list(arms), fill_value=0)
         excess[(day, source)] = observed.to_numpy(float) - observed.sum() * weights
     return {"overall_p": overall.pvalue, "daily_p": np.array(daily_p),
-            "min_window_adjusted": float(window_adjusted.min()),
+            "min_window_adjusted": float(min(window_adjusted)),
             "source_adjusted": source_adjusted, "independence_p": independence.pvalue,
             "excess_cells": len(excess)}
 
