@@ -455,7 +455,12 @@ def explain_misses(goals: dict[str, str], figures: dict[str, Any],
             f"oracle's {_fmt(ref['oracle_power_at_matched_alpha'])} at false alarm rate "
             f"{_fmt(ref['oracle_alpha'])}; A/A false alarms in the 2-arm family came from "
             f"{_fmt(aa.get('alert_kinds_at_first_alarm'))}; detections came from "
-            f"{_fmt(ref.get('alert_kinds_at_detection'))}")
+            f"{_fmt(ref.get('alert_kinds_at_detection'))}. The oracle is told the inflow's days "
+            "and tests them once; Inrush's levels hold over every day the diagnosis is read "
+            "(each family's lifetime level is spent over the days and windows it will ever "
+            "test, see 'Verdicts under daily reading'), which costs power on a short inflow "
+            "and is what keeps the A/A rate this low. The oracle's threshold follows that rate "
+            "down, so the ratio fell when the lifetime levels came in.")
     if goals.get("detection.localisation_jaccard_median") == "missed" and fam:
         ref = fam["ref_unlabeled"]
         notes.append("detection.localisation_jaccard_median: share of detected runs without "
