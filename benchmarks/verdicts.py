@@ -390,8 +390,10 @@ def _case_summary(found: list[dict[str, Any]], novelty: list[dict[str, Any]]
 def _pct(rate: dict[str, Any]) -> str:
     if rate["rate"] is None:
         return "n/a"
-    return (f"{100 * rate['rate']:.1f}% [{100 * rate['wilson_low']:.1f}, "
-            f"{100 * rate['wilson_high']:.1f}] (n={rate['n']})")
+    # Two decimals below 1%, so that one alert in 2,200 runs does not read as 0.0%.
+    digits = 2 if 0 < rate["rate"] < 0.01 else 1
+    return (f"{100 * rate['rate']:.{digits}f}% [{100 * rate['wilson_low']:.{digits}f}, "
+            f"{100 * rate['wilson_high']:.{digits}f}] (n={rate['n']})")
 
 
 def write(result: dict[str, Any]) -> None:
