@@ -52,6 +52,8 @@ ORGANIC_SOURCES = frozenset({"organic", "direct", UNATTRIBUTED})
 SEGMENT_LEVEL = 1e-4
 # A run that starts on the first day and holds at least this share of the days is persistent.
 PERSISTENT_COVER = 0.8
+# A run is read as a steady skew inside some sources when they carry this share of its excess.
+STEADY_SOURCE_SHARE = 0.5
 
 
 class KnownCampaign(Protocol):
@@ -100,6 +102,8 @@ class _Run:
     last: int
     signals: list[Signal] = field(default_factory=list)
     whole_period: bool = False
+    # Sources whose whole-period test found a skew spread over most of the experiment.
+    steady_sources: list[str] = field(default_factory=list)
 
 
 ImpactFunction = Callable[[tuple[EpisodeCell, ...], str], Mapping[str, MetricImpact]]
@@ -214,6 +218,9 @@ def _attach(runs: list[_Run], signals: Sequence[Signal], n_days: int,
             steady = (first <= first_active + 2 and (last - first_active + 1)
                       >= PERSISTENT_COVER * (n_days - first_active))
             days = None if steady else (first, last)
+            steady_source = signal.source if steady else None
+        else:
+            steady_source = None
         if days is not None:
             first, last = days
             touching = [r for r in runs if r.first <= last + 1 and first <= r.last + 1]
@@ -230,7 +237,8 @@ def _attach(runs: list[_Run], signals: Sequence[Signal], n_days: int,
         # Whole-period evidence: the persistent run if any, else the run holding most of the
         # source's (or the arms') excess; with no run, the whole period.
         if not runs:
-            runs.append(_Run(0, n_days - 1, [signal], whole_period=True))
+            runs.append(_Run(0, n_days - 1, [signal], whole_period=True,
+                             steady_sources=[steady_source] if steady_source else []))
             continue
         if signal.source is not None and signal.source in table.sources:
             column = table.entered[:, :, table.sources.index(signal.source)].astype(float)
@@ -240,6 +248,8 @@ def _attach(runs: list[_Run], signals: Sequence[Signal], n_days: int,
         deviation = np.abs(shares - shares.mean(axis=0)).sum(axis=1) * column.sum(axis=1)
         best = max(runs, key=lambda r: deviation[r.first:r.last + 1].sum())
         best.signals.append(signal)
+        if steady_source:
+            best.steady_sources.append(steady_source)
     runs.sort(key=lambda r: r.first)
 
 
@@ -289,6 +299,7 @@ def _merge_overlapping(runs: list[_Run]) -> list[_Run]:
             merged[-1].last = max(merged[-1].last, run.last)
             merged[-1].signals.extend(run.signals)
             merged[-1].whole_period |= run.whole_period
+            merged[-1].steady_sources.extend(run.steady_sources)
         else:
             merged.append(run)
     return merged
@@ -418,7 +429,16 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
     # may not show (the other sources dilute it), so they are what is counted and described.
     skewed_sources = sorted({s.source for s in run.signals if s.source in sources})
     source_only = bool(skewed_sources) and all(s.kind == "skewed_source" for s in run.signals)
-    in_scope = np.isin(np.asarray(sources, dtype=object), skewed_sources) if source_only \
+    scope = skewed_sources if source_only else []
+    # A steady skew inside some sources that also tips the arms' totals: when those sources
+    # carry most of the run's excess, the run is that skew seen through the totals (dated by
+    # whatever crossed first), not an event of its own.
+    steady = sorted(set(run.steady_sources) & set(sources))
+    if steady and not persistent and _excess_share(
+            table.entered[first:last + 1], planned[first:last + 1],
+            [sources.index(s) for s in steady]) >= STEADY_SOURCE_SHARE:
+        persistent, scope = True, steady
+    in_scope = np.isin(np.asarray(sources, dtype=object), scope) if scope \
         else np.ones(len(sources), dtype=bool)
     if persistent:
         # Steady from the first day: the episode is the whole period so far.
@@ -465,7 +485,7 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
                               .tolist(), strict=True))
         planned_w = dict(zip(arms, (scoped_expected.sum(axis=0) / max(scoped.sum(), 1.0))
                              .tolist(), strict=True))
-    through = tuple(skewed_sources) if source_only and shape == PERSISTENT else ()
+    through = tuple(scope) if scope and shape == PERSISTENT else ()
     impacts: Mapping[str, MetricImpact] = impact(cells, arms[arm]) if impact else {}
     measured = [i.in_se for i in impacts.values() if i.in_se is not None]
     material = not measured or max(measured) >= materiality
@@ -484,9 +504,22 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
         summary=summary, units_meaning=meaning,
         advice=shape_advice(shape, arm_name, main, named_campaigns, observed_w, planned_w,
                             through),
-        evidence=evidence, impact=impacts, observed_weights=observed_w,
-        planned_weights=planned_w, context=context, ongoing=last == n_days - 1,
+        # The episode's weights are the arms' shares; a skew within some sources gives its
+        # own shares in the summary and advice only.
+        evidence=evidence, impact=impacts, observed_weights=None if through else observed_w,
+        planned_weights=None if through else planned_w, context=context,
+        ongoing=last == n_days - 1,
         alert_level=deciding.alert_level)
+
+
+def _excess_share(entered: np.ndarray, planned: np.ndarray, chosen: Sequence[int]) -> float:
+    """Share of the span's absolute excess (summed over days, per arm and source) that the
+    ``chosen`` sources carry. ``entered`` is ``(days, arms, sources)``."""
+    entered = np.asarray(entered, dtype=float)
+    excess = entered - entered.sum(axis=1, keepdims=True) * planned[:, :, None]
+    by_source = np.abs(excess.sum(axis=0)).sum(axis=0)
+    total = float(by_source.sum())
+    return float(by_source[list(chosen)].sum()) / total if total > 0 else 0.0
 
 
 def _main_sources(contributions: Sequence[SourceContribution], cover: float = 0.8) -> list[str]:

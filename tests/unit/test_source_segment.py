@@ -17,7 +17,7 @@ from scipy import stats
 
 from benchmarks.detection import Task, run_task
 from benchmarks.simulate import Inflow, Scenario, simulate
-from detectors import ObservationTable, diagnose
+from detectors import AllocationSchedule, ObservationTable, diagnose
 from detectors.episode_finder import Signal, find_episodes, source_segment
 
 PLAN = np.array([0.5, 0.5])
@@ -134,6 +134,29 @@ def test_a_steady_skew_within_one_source_is_described_and_counted_in_that_source
     assert (episode.shape, episode.arm) == ("persistent", "cards")
     assert {cell.source for cell in episode.cells} == {"app_v2"}
     assert episode.units == pytest.approx(21 * 60)  # 360 - 0.5 * 600 a day, app_v2 alone
-    assert episode.observed_weights == pytest.approx({"control": 0.4, "cards": 0.6})
-    assert "through app_v2" in episode.summary and "app_v2" in episode.advice[0]
+    # The arms' own shares are on plan: the source's shares are told in words only, so that
+    # nothing reads them as the experiment's weights.
+    assert episode.observed_weights is None and episode.planned_weights is None
+    assert "through app_v2 are split at about cards 0.60, control 0.40" in episode.summary
+    assert "app_v2" in episode.advice[0]
     assert "declared weights look wrong" not in episode.advice[0]
+
+
+def test_a_steady_skew_in_one_source_that_tips_the_totals_is_read_as_that_skew() -> None:
+    # Invented traffic: app_v2 (600 a day) split 58/42 on every day beside 20,000 on-plan
+    # organic units a day. The arms' totals and the change detector see it too; before, the
+    # run they dated read as a "shortfall in control" over two weeks.
+    rng = np.random.default_rng(4)
+    rows = []
+    for day in pd.date_range("2026-03-01", periods=21).strftime("%Y-%m-%d"):
+        for source, share, mean in (("organic", 0.5, 20000), ("app_v2", 0.58, 600)):
+            total = rng.poisson(mean)
+            cards = rng.binomial(total, share)
+            rows += [{"date": day, "arm": "control", "source": source, "entered": total - cards},
+                     {"date": day, "arm": "cards", "source": source, "entered": cards}]
+    table = ObservationTable.from_frame(pd.DataFrame(rows), ["control", "cards"])
+    [episode] = diagnose(table, AllocationSchedule.constant(["control", "cards"])).episodes
+    assert (episode.shape, episode.arm) == ("persistent", "cards")
+    assert (episode.start, episode.end) == (table.dates[0].item(), table.dates[-1].item())
+    assert {cell.source for cell in episode.cells} == {"app_v2"}
+    assert "through app_v2" in episode.summary
