@@ -431,13 +431,18 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
     source_only = bool(skewed_sources) and all(s.kind == "skewed_source" for s in run.signals)
     scope = skewed_sources if source_only else []
     # A steady skew inside some sources that also tips the arms' totals: when those sources
-    # carry most of the run's excess, the run is that skew seen through the totals (dated by
-    # whatever crossed first), not an event of its own.
+    # carry most of the excess of a run that starts with the data, the run is that skew seen
+    # through the totals (dated by whatever crossed first), not an event of its own.
     steady = sorted(set(run.steady_sources) & set(sources))
-    if steady and not persistent and _excess_share(
-            table.entered[first:last + 1], planned[first:last + 1],
-            [sources.index(s) for s in steady]) >= STEADY_SOURCE_SHARE:
-        persistent, scope = True, steady
+    # Only a run that itself starts with the data: a trickle that starts later is dated by its
+    # run even when its source's test cannot tell it from a steady skew.
+    if steady and not persistent and first <= first_active + 2:
+        chosen = [sources.index(s) for s in steady]
+        if (_excess_share(table.entered[first:last + 1], planned[first:last + 1], chosen)
+                >= STEADY_SOURCE_SHARE
+                and _carries_on(table.entered[first_active:], planned[first_active:], chosen,
+                                first - first_active, last - first_active)):
+            persistent, scope = True, steady
     in_scope = np.isin(np.asarray(sources, dtype=object), scope) if scope \
         else np.ones(len(sources), dtype=bool)
     if persistent:
@@ -520,6 +525,23 @@ def _excess_share(entered: np.ndarray, planned: np.ndarray, chosen: Sequence[int
     by_source = np.abs(excess.sum(axis=0)).sum(axis=0)
     total = float(by_source.sum())
     return float(by_source[list(chosen)].sum()) / total if total > 0 else 0.0
+
+
+def _carries_on(entered: np.ndarray, planned: np.ndarray, chosen: Sequence[int], first: int,
+                last: int) -> bool:
+    """Whether the ``chosen`` sources' daily excess outside days ``first..last`` is at least
+    half of that inside, in the same direction: a steady skew, not a burst that the run holds.
+    """
+    entered = np.asarray(entered, dtype=float)[:, :, list(chosen)].sum(axis=2)
+    excess = entered - entered.sum(axis=1, keepdims=True) * planned
+    inside = np.zeros(excess.shape[0], dtype=bool)
+    inside[first:last + 1] = True
+    if inside.all() or not inside.any():
+        return False
+    per_day_in = excess[inside].mean(axis=0)
+    per_day_out = excess[~inside].mean(axis=0)
+    scale = float(per_day_in @ per_day_in)
+    return scale > 0 and float(per_day_out @ per_day_in) >= 0.5 * scale
 
 
 def _main_sources(contributions: Sequence[SourceContribution], cover: float = 0.8) -> list[str]:
