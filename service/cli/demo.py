@@ -91,7 +91,7 @@ def _online(args: argparse.Namespace) -> int:
         if not _wait_healthy(client, server):
             print("inrush demo: the server did not start", file=sys.stderr)
             return EXIT_FAILURE
-        if getattr(args, "pull", False):
+        if args.pull:
             from .pull import feed_demo
 
             feed_demo(client)

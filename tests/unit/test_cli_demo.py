@@ -45,7 +45,7 @@ def test_urls_and_token_only_while_the_server_runs(monkeypatch: pytest.MonkeyPat
     monkeypatch.setattr(demo, "_upload", lambda client: print("uploaded"))
     monkeypatch.setattr(demo, "_show", lambda client: print("report"))
     args = argparse.Namespace(port=0, database=tmp_path / "demo.db", no_serve=no_serve,
-                              offline=False)
+                              offline=False, pull=False)
     assert demo.run_demo(args) == 0
     out = capsys.readouterr().out
     assert "uploaded" in out and "report" in out
