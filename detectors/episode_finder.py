@@ -46,6 +46,7 @@ from .episodes import (
     SourceContribution,
 )
 from .srm import Window, chisquare_rows
+from .stratify import excess_by_source
 
 ORGANIC_SOURCES = frozenset({"organic", "direct", UNATTRIBUTED})
 # A share segment counts as off plan, for localisation only, below this chi-square p-value.
@@ -212,15 +213,17 @@ def _attach(runs: list[_Run], signals: Sequence[Signal], n_days: int,
     (:func:`source_segment`) unless they are most of the experiment."""
     for signal in sorted(signals, key=lambda s: s.days is None):
         days = signal.days
-        if days is None and signal.source is not None and signal.source in table.sources:
-            column = table.entered[:, :, table.sources.index(signal.source)].astype(float)
-            first, last = source_segment(column, planned)
-            steady = (first <= first_active + 2 and (last - first_active + 1)
-                      >= PERSISTENT_COVER * (n_days - first_active))
-            days = None if steady else (first, last)
-            steady_source = signal.source if steady else None
-        else:
-            steady_source = None
+        steady_source = column = None
+        if days is None:
+            by_source = signal.source is not None and signal.source in table.sources
+            column = (table.entered[:, :, table.sources.index(signal.source)] if by_source
+                      else table.daily_totals).astype(float)
+            if by_source:
+                first, last = source_segment(column, planned)
+                if _from_start(first, last, first_active, n_days):
+                    steady_source = signal.source
+                else:
+                    days = (first, last)
         if days is not None:
             first, last = days
             touching = [r for r in runs if r.first <= last + 1 and first <= r.last + 1]
@@ -240,10 +243,7 @@ def _attach(runs: list[_Run], signals: Sequence[Signal], n_days: int,
             runs.append(_Run(0, n_days - 1, [signal], whole_period=True,
                              steady_sources=[steady_source] if steady_source else []))
             continue
-        if signal.source is not None and signal.source in table.sources:
-            column = table.entered[:, :, table.sources.index(signal.source)].astype(float)
-        else:
-            column = table.daily_totals.astype(float)
+        assert column is not None
         shares = column / np.maximum(column.sum(axis=1, keepdims=True), 1.0)
         deviation = np.abs(shares - shares.mean(axis=0)).sum(axis=1) * column.sum(axis=1)
         best = max(runs, key=lambda r: deviation[r.first:r.last + 1].sum())
@@ -251,6 +251,13 @@ def _attach(runs: list[_Run], signals: Sequence[Signal], n_days: int,
         if steady_source:
             best.steady_sources.append(steady_source)
     runs.sort(key=lambda r: r.first)
+
+
+def _from_start(first: int, last: int, first_active: int, n_days: int) -> bool:
+    """Days ``first..last`` start with the data (a day or two of noise aside) and hold most of
+    it: what reads as steady from the first day."""
+    return (first <= first_active + 2
+            and (last - first_active + 1) >= PERSISTENT_COVER * (n_days - first_active))
 
 
 def source_segment(column: np.ndarray, planned: np.ndarray) -> tuple[int, int]:
@@ -421,10 +428,7 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
     first, last = run.first, run.last
     start, end = dates[first].item(), dates[last].item()
     near_change = any(abs((c - start).days) <= 3 for c in allocation_changes)
-    # From the first day (a day or two of noise at the start aside) and over most of the data.
-    persistent = run.whole_period or (
-        first <= first_active + 2
-        and (last - first_active + 1) >= PERSISTENT_COVER * (n_days - first_active))
+    persistent = run.whole_period or _from_start(first, last, first_active, n_days)
     # Found only by per-source tests: the skew lives in those sources, which the arms' totals
     # may not show (the other sources dilute it), so they are what is counted and described.
     skewed_sources = sorted({s.source for s in run.signals if s.source in sources})
@@ -445,20 +449,23 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
             persistent, scope = True, steady
     in_scope = np.isin(np.asarray(sources, dtype=object), scope) if scope \
         else np.ones(len(sources), dtype=bool)
+    # Observed and expected units per arm over the episode, for the shapes told by weights.
+    arm_totals: tuple[np.ndarray, np.ndarray] | None = None
     if persistent:
         # Steady from the first day: the episode is the whole period so far.
         first, last = first_active, n_days - 1
         start, end = dates[first].item(), dates[last].item()
-        span = np.arange(first, last + 1)
-        scoped = table.entered[span][:, :, in_scope].sum(axis=2).astype(float)
-        scoped_expected = scoped.sum(axis=1, keepdims=True) * planned[span]
-        relative = ((scoped - scoped_expected).sum(axis=0)
-                    / np.maximum(scoped_expected.sum(axis=0), 1e-12))
+        arm_totals = _arm_totals(table.entered[first:last + 1][:, :, in_scope].sum(axis=2),
+                                 planned[first:last + 1])
+        observed, planned_units = arm_totals
+        relative = (observed - planned_units) / np.maximum(planned_units, 1e-12)
         shape, arm = PERSISTENT, int(np.argmax(relative))
     else:
         shape, arm = classify(counts, planned, first, last, in_run,
                               near_allocation_change=near_change)
     span = slice(first, last + 1)
+    if shape == ALLOCATION_STEP:
+        arm_totals = _arm_totals(counts[span], planned[span])
     cell_units = episode_units(table.entered[span], planned[span], arm, shape) * in_scope
     daily_units = cell_units.sum(axis=1)
     total = float(daily_units.sum())
@@ -482,14 +489,11 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
     deciding = signals[0]
     severity = "alert" if any(s.severity == "alert" for s in signals) else "watch"
     observed_w = planned_w = None
-    if shape in (ALLOCATION_STEP, PERSISTENT):
-        scoped = (table.entered[span][:, :, in_scope].sum(axis=2).astype(float)
-                  if shape == PERSISTENT else counts[span])
-        scoped_expected = scoped.sum(axis=1, keepdims=True) * planned[span]
-        observed_w = dict(zip(arms, (scoped.sum(axis=0) / max(scoped.sum(), 1.0))
-                              .tolist(), strict=True))
-        planned_w = dict(zip(arms, (scoped_expected.sum(axis=0) / max(scoped.sum(), 1.0))
-                             .tolist(), strict=True))
+    if arm_totals is not None:
+        observed, planned_units = arm_totals
+        units_in = max(float(observed.sum()), 1.0)
+        observed_w = dict(zip(arms, (observed / units_in).tolist(), strict=True))
+        planned_w = dict(zip(arms, (planned_units / units_in).tolist(), strict=True))
     through = tuple(scope) if scope and shape == PERSISTENT else ()
     impacts: Mapping[str, MetricImpact] = impact(cells, arms[arm]) if impact else {}
     measured = [i.in_se for i in impacts.values() if i.in_se is not None]
@@ -517,12 +521,17 @@ def _describe(run: _Run, table: ObservationTable, counts: np.ndarray, planned: n
         alert_level=deciding.alert_level)
 
 
+def _arm_totals(units: np.ndarray, planned: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Observed and planned units per arm, summed over the days of ``units`` (days, arms)."""
+    units = np.asarray(units, dtype=float)
+    return units.sum(axis=0), (units.sum(axis=1, keepdims=True) * planned).sum(axis=0)
+
+
 def _excess_share(entered: np.ndarray, planned: np.ndarray, chosen: Sequence[int]) -> float:
     """Share of the span's absolute excess (summed over days, per arm and source) that the
     ``chosen`` sources carry. ``entered`` is ``(days, arms, sources)``."""
-    entered = np.asarray(entered, dtype=float)
-    excess = entered - entered.sum(axis=1, keepdims=True) * planned[:, :, None]
-    by_source = np.abs(excess.sum(axis=0)).sum(axis=0)
+    by_source = np.abs(excess_by_source(np.asarray(entered, float), planned).sum(axis=0)
+                       ).sum(axis=0)
     total = float(by_source.sum())
     return float(by_source[list(chosen)].sum()) / total if total > 0 else 0.0
 
@@ -532,8 +541,8 @@ def _carries_on(entered: np.ndarray, planned: np.ndarray, chosen: Sequence[int],
     """Whether the ``chosen`` sources' daily excess outside days ``first..last`` is at least
     half of that inside, in the same direction: a steady skew, not a burst that the run holds.
     """
-    entered = np.asarray(entered, dtype=float)[:, :, list(chosen)].sum(axis=2)
-    excess = entered - entered.sum(axis=1, keepdims=True) * planned
+    excess = excess_by_source(np.asarray(entered, float)[:, :, list(chosen)], planned
+                              ).sum(axis=2)
     inside = np.zeros(excess.shape[0], dtype=bool)
     inside[first:last + 1] = True
     if inside.all() or not inside.any():
