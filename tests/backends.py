@@ -86,14 +86,20 @@ def _migrated_sqlite_file() -> Path:
 def _migrated_postgres_template() -> str:
     """A PostgreSQL database at the head revision that test databases are copied from
     (``CREATE DATABASE ... TEMPLATE``); made once per process and dropped at exit."""
-    import psycopg
-
-    name = f"inrush_template_{secrets.token_hex(6)}"
-    admin = libpq(POSTGRES_URL)
-    with psycopg.connect(admin, autocommit=True) as connection:
-        connection.execute(f'CREATE DATABASE "{name}"')
+    name = _create_postgres_database("inrush_template")
     atexit.register(_drop_postgres_database, name)
     _migrate(make_url(POSTGRES_URL).set(database=name).render_as_string(hide_password=False))
+    return name
+
+
+def _create_postgres_database(prefix: str, template: str | None = None) -> str:
+    """Create ``prefix_<hex>``, empty or a copy of ``template``; its name."""
+    import psycopg
+
+    name = f"{prefix}_{secrets.token_hex(6)}"
+    copy = f' TEMPLATE "{template}"' if template else ""
+    with psycopg.connect(libpq(POSTGRES_URL), autocommit=True) as connection:
+        connection.execute(f'CREATE DATABASE "{name}"{copy}')
     return name
 
 
@@ -131,12 +137,7 @@ def postgres_database(prefix: str = "inrush_rel", template: str | None = None
                       ) -> Iterator[str]:
     """A fresh PostgreSQL database (dropped afterwards), empty or a copy of ``template``; its
     SQLAlchemy URL."""
-    import psycopg
-
-    name = f"{prefix}_{secrets.token_hex(6)}"
-    copy = f' TEMPLATE "{template}"' if template else ""
-    with psycopg.connect(libpq(POSTGRES_URL), autocommit=True) as connection:
-        connection.execute(f'CREATE DATABASE "{name}"{copy}')
+    name = _create_postgres_database(prefix, template)
     try:
         yield make_url(POSTGRES_URL).set(database=name).render_as_string(hide_password=False)
     finally:

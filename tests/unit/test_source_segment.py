@@ -64,8 +64,7 @@ def test_the_segment_is_the_brute_force_likelihood_choice(seed: int) -> None:
     traffic = rng.integers(0, 60, days) * (rng.random(days) > 0.2)
     cards = rng.binomial(traffic, tilt)
     column = np.column_stack([traffic - cards, cards])
-    if column.sum() == 0:
-        pytest.skip("no traffic drawn")
+    assert column.sum() > 0, "every seed here draws some traffic"
     assert source_segment(column, np.tile(PLAN, (days, 1))) == _brute_force(column)
 
 
