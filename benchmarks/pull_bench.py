@@ -25,6 +25,7 @@ import argparse
 import json
 import os
 import resource
+import statistics
 import subprocess
 import sys
 import time
@@ -217,10 +218,9 @@ def _run(kind: str, folder: Path) -> dict[str, Any]:
 
 def _median(runs: list[dict[str, Any]]) -> dict[str, Any]:
     """Median wall and CPU time of repeated runs, the largest peak memory."""
-    middle = len(runs) // 2
     result = dict(runs[0])
-    result["seconds"] = sorted(r["seconds"] for r in runs)[middle]
-    result["cpu_seconds"] = sorted(r["cpu_seconds"] for r in runs)[middle]
+    result["seconds"] = statistics.median_high(r["seconds"] for r in runs)
+    result["cpu_seconds"] = statistics.median_high(r["cpu_seconds"] for r in runs)
     result["peak_rss_mib"] = max(r["peak_rss_mib"] for r in runs)
     result["runs"] = len(runs)
     return result
